@@ -1,0 +1,387 @@
+"""Frequency-domain metrics, batched over candidates.
+
+Rational loops: every quantity comes from polynomial roots in x = w^2, not from a
+frequency grid. With p(jw) = R(x) + jw I(x), |p(jw)|^2 = R^2 + x I^2; gain
+crossovers solve |N|^2 = |D|^2, phase crossovers solve Ni*Dr - Nr*Di = 0, and the
+peak of |A/B| over w is at x = 0, x -> inf or a positive root of A'B - AB'.
+
+Loops with dead time: the frequency response is evaluated exactly (phase -w*theta)
+on a dense logarithmic grid and every extremum or crossing is refined by batched
+golden-section search or bisection on the exact response; stability comes from
+the Nyquist criterion on the exact response (Nyquist 1932).
+
+All polynomials are first rescaled to s = w0 * s_hat, with w0 the geometric mean
+of the closed-loop pole magnitudes, which keeps the companion matrices well
+conditioned over wide frequency ranges.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..lti import batch_add, batch_conv, batch_polyval, batch_roots
+
+_REAL_TOL = 1e-6      # |Im x| / (1 + |x|) below which a root in x = w^2 counts as real
+
+
+# ------------------------------------------------------------ polynomial tools
+def scale(p: np.ndarray, w0: np.ndarray) -> np.ndarray:
+    """Coefficients of p(w0 * s_hat), row-wise (w0 is (N,))."""
+    p = np.atleast_2d(p)
+    powers = np.arange(p.shape[1] - 1, -1, -1)
+    return p * w0[:, None] ** powers
+
+
+def jw_split(p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """R, I (descending in x = w^2) with p(jw) = R(x) + j w I(x)."""
+    p = np.atleast_2d(p)
+    asc = p[:, ::-1]
+    ev, od = asc[:, 0::2], asc[:, 1::2]
+    ev = ev * (-1.0) ** np.arange(ev.shape[1])
+    od = od * (-1.0) ** np.arange(od.shape[1]) if od.shape[1] else np.zeros((p.shape[0], 1))
+    return ev[:, ::-1], od[:, ::-1]
+
+
+def times_x(p: np.ndarray) -> np.ndarray:
+    return np.pad(p, ((0, 0), (0, 1)))
+
+
+def mag2(p: np.ndarray) -> np.ndarray:
+    """|p(jw)|^2 as a polynomial in x = w^2 (descending)."""
+    r, i = jw_split(p)
+    return batch_add(batch_conv(r, r), times_x(batch_conv(i, i)))
+
+
+def deriv(p: np.ndarray) -> np.ndarray:
+    m = p.shape[1]
+    if m == 1:
+        return np.zeros_like(p)
+    return p[:, :-1] * np.arange(m - 1, 0, -1)
+
+
+def positive_real_roots(p: np.ndarray, polish: int = 3) -> np.ndarray:
+    """Positive real roots of each row (NaN padded), polished by Newton steps."""
+    r = batch_roots(p)
+    ok = (np.abs(r.imag) <= _REAL_TOL * (1 + np.abs(r))) & (r.real > 0)
+    x = np.where(ok, r.real, np.nan)
+    if x.shape[1] == 0:
+        return x
+    dp = deriv(p)
+    for _ in range(polish):
+        f = batch_polyval(p, x)
+        g = batch_polyval(dp, x)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            step = np.where(g != 0, f / g, 0.0)
+        nx = x - step
+        x = np.where(np.isfinite(nx) & (nx > 0) & (np.abs(step) < 0.5 * np.abs(x)), nx, x)
+    return x
+
+
+def peak_ratio(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """sup over w >= 0 of sqrt(A(x)/B(x)) and the w where it occurs (0 or inf at the ends)."""
+    stat = batch_add(batch_conv(deriv(a), b), -batch_conv(a, deriv(b)))
+    xs = positive_real_roots(stat)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        vals = batch_polyval(a, xs) / batch_polyval(b, xs)
+        f0 = a[:, -1] / b[:, -1]
+        finf = _limit_inf(a, b)
+    allv = np.concatenate([f0[:, None], np.nan_to_num(vals, nan=-np.inf), finf[:, None]], axis=1)
+    allx = np.concatenate([np.zeros((a.shape[0], 1)), xs, np.full((a.shape[0], 1), np.inf)], axis=1)
+    k = np.argmax(allv, axis=1)
+    best = allv[np.arange(a.shape[0]), k]
+    return np.sqrt(np.maximum(best, 0.0)), np.sqrt(allx[np.arange(a.shape[0]), k])
+
+
+def _limit_inf(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """lim x->inf A(x)/B(x) row-wise, from the effective degrees."""
+    da, la = _lead(a)
+    db, lb = _lead(b)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(da < db, 0.0, np.where(da > db, np.inf, la / lb))
+
+
+def _lead(p: np.ndarray, rel: float = 1e-14) -> tuple[np.ndarray, np.ndarray]:
+    """Effective degree and leading coefficient of each row (coefficients below rel*max are zero)."""
+    nz = np.abs(p) > rel * np.max(np.abs(p), axis=1, keepdims=True)
+    first = np.where(nz.any(axis=1), nz.argmax(axis=1), p.shape[1] - 1)
+    return p.shape[1] - 1 - first, p[np.arange(p.shape[0]), first]
+
+
+# ------------------------------------------------------------------ rational
+def rational_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, w0: np.ndarray) -> dict[str, np.ndarray]:
+    """Margins, crossovers, peaks and bandwidth of the rational loops L = Np Nc/(Dp Dc)."""
+    n = nc.shape[0]
+    nl = scale(batch_conv(nc, np_), w0)
+    dl = scale(batch_conv(dc, dp), w0)
+    norm = np.maximum(np.abs(dl).max(axis=1), np.abs(nl).max(axis=1))[:, None]
+    nl, dl = nl / norm, dl / norm
+    char = batch_add(dl, nl)
+    npdc = scale(batch_conv(dc, np_), w0) / norm
+    ncdp = scale(batch_conv(nc, dp), w0) / norm
+
+    def loop_at(w):
+        jw = 1j * w
+        return batch_polyval(nl, jw) / batch_polyval(dl, jw)
+
+    # gain crossovers and phase margin
+    m2n, m2d, m2c = mag2(nl), mag2(dl), mag2(char)
+    xg = positive_real_roots(batch_add(m2n, -m2d))
+    wg = np.sqrt(xg)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lg = loop_at(wg)
+    out = _margins_from_crossovers(wg, lg, w0)
+
+    # phase crossovers -> critical gains -> stabilising gain interval
+    nr, ni = jw_split(nl)
+    dr, di = jw_split(dl)
+    xp = positive_real_roots(batch_add(batch_conv(ni, dr), -batch_conv(nr, di)))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lp = loop_at(np.sqrt(xp))
+        l0 = nl[:, -1] / dl[:, -1]
+        dn, ln_ = _lead(nl)
+        dd, ld = _lead(dl)
+        linf = np.where(dn == dd, ln_ / ld, 0.0)
+    lpts = np.concatenate([l0[:, None], lp, linf[:, None]], axis=1)
+    out.update(_gain_interval(lpts))
+
+    # peaks of |S|, |T|, |PS|, |CS|
+    out["sensitivity_peak"], out["sensitivity_peak_rad_s"] = _scaled_peak(m2d, m2c, w0)
+    out["complementary_peak"], out["complementary_peak_rad_s"] = _scaled_peak(m2n, m2c, w0)
+    out["disturbance_gain_peak"], _ = peak_ratio(mag2(npdc), m2c)
+    out["control_gain_peak"], _ = peak_ratio(mag2(ncdp), m2c)
+
+    # closed-loop -3 dB bandwidth of T
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t0sq = (nl[:, -1] / char[:, -1]) ** 2
+    xb = positive_real_roots(batch_add(m2n, -0.5 * t0sq[:, None] * m2c))
+    with np.errstate(invalid="ignore"):
+        bw = np.sqrt(np.nanmin(np.where(np.isnan(xb), np.inf, xb), axis=1)) if xb.shape[1] else np.full(n, np.inf)
+    out["bandwidth_rad_s"] = np.where(t0sq > 0, bw * w0, np.nan)
+    return out
+
+
+def _scaled_peak(a, b, w0):
+    pk, w = peak_ratio(a, b)
+    return pk, w * w0
+
+
+def _margins_from_crossovers(wg: np.ndarray, lg: np.ndarray, w0: np.ndarray) -> dict[str, np.ndarray]:
+    """Phase margin (min over crossovers), delay margin and the crossover frequency.
+
+    ``wg`` are crossover frequencies in the same scaled units as ``w0`` divides out
+    (real frequency = wg * w0), NaN padded; ``lg`` the loop values there.
+    """
+    valid = ~np.isnan(wg)
+    pm = np.degrees(np.angle(-lg))                       # angle measured from -1, in (-180, 180]
+    pm = np.where(valid, pm, np.inf)
+    w = wg * w0[:, None]
+    phi = np.where(valid, np.mod(np.radians(np.where(valid, pm, 0.0)), 2 * np.pi), np.inf)  # lag still available
+    with np.errstate(invalid="ignore", divide="ignore"):
+        dm = np.where(valid, phi / w, np.inf)
+    k = np.argmin(pm, axis=1) if pm.shape[1] else np.zeros(wg.shape[0], int)
+    rows = np.arange(wg.shape[0])
+    has = valid.any(axis=1) if valid.shape[1] else np.zeros(wg.shape[0], bool)
+    wmax = np.where(has, np.nanmax(np.where(valid, w, -np.inf), axis=1) if w.shape[1] else np.nan, np.nan)
+    return {
+        "phase_margin_deg": np.where(has, pm[rows, k] if pm.shape[1] else np.inf, np.inf),
+        "phase_margin_rad_s": np.where(has, w[rows, k] if w.shape[1] else np.nan, np.nan),
+        "delay_margin_s": np.where(has, dm.min(axis=1) if dm.shape[1] else np.inf, np.inf),
+        "crossover_rad_s": wmax,
+    }
+
+
+def _gain_interval(lpts: np.ndarray) -> dict[str, np.ndarray]:
+    """Stabilising gain interval around k = 1 from loop values at phase crossovers.
+
+    Where L(jw) is real and negative, the gain k = -1/L(jw) puts a closed-loop
+    pole on the imaginary axis; the nearest such gains above and below 1 bound
+    the interval (gain margins; +inf / no lower limit when none exist).
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        neg = (lpts.real < 0) & (np.abs(lpts.imag) <= 1e-6 * np.abs(lpts)) & np.isfinite(lpts.real)
+        kc = np.where(neg, -1.0 / lpts.real, np.nan)
+        above = np.where(kc > 1.0, kc, np.inf).min(axis=1)
+        below = np.where(kc < 1.0, kc, -np.inf).max(axis=1)
+        return {
+            "gain_margin_db": 20 * np.log10(above),
+            "gain_margin_low_db": np.where(below > 0, 20 * np.log10(np.maximum(below, 1e-300)), -np.inf),
+        }
+
+
+# -------------------------------------------------------------- dead time
+def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.ndarray,
+                  points: int = 2400) -> dict[str, np.ndarray]:
+    """The same metrics for L = Np Nc exp(-delay s)/(Dp Dc), plus the Nyquist verdict.
+
+    Grid: ``points`` logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate;
+    peaks by golden-section search and crossings by bisection on the exact response.
+    """
+    n = nc.shape[0]
+    nl = batch_conv(nc, np_)
+    dl = batch_conv(dc, dp)
+    npdc = batch_conv(dc, np_)
+    ncdp = batch_conv(nc, dp)
+    lo, hi = 1e-5 * w0, 1e4 * w0
+    u = np.linspace(0.0, 1.0, points)
+    grid = lo[:, None] * (hi / lo)[:, None] ** u[None, :]
+
+    def parts(w):
+        jw = 1j * w
+        nn, dd = batch_polyval(nl, jw), batch_polyval(dl, jw)
+        e = np.exp(-delay * jw)
+        return nn * e, dd
+
+    def loop(w):
+        nn, dd = parts(w)
+        return nn / dd
+
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        L = loop(grid)
+        out = {}
+        # Nyquist count on the line Re s = -eps (imaginary-axis poles counted as open-loop unstable)
+        out["nyquist_stable"] = _nyquist_stable(nl, dl, delay, lo)
+
+        # gain crossovers
+        g = np.log(np.abs(L))
+        wg = _bisect_crossings(lambda w: np.log(np.abs(loop(w))), grid, g)
+        lg = loop(wg)
+        out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
+
+        # phase crossovers (L real negative) and the ends of the frequency axis
+        im = L.imag
+        wp = _bisect_crossings(lambda w: loop(w).imag, grid, im)
+        lp = loop(wp)
+        lp = np.where(lp.real < 0, lp.real + 0j, np.nan)
+        l0 = nl[:, -1] / dl[:, -1]
+        dn, ln_ = _lead(nl)
+        dd, ld = _lead(dl)
+        linf_mag = np.where(dn == dd, np.abs(ln_ / ld), 0.0)
+        # at high frequency the delayed loop turns round at |L(inf)|: every phase is reached
+        lpts = np.concatenate([l0[:, None] + 0j, lp, -linf_mag[:, None] + 0j], axis=1)
+        out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan)))
+        out["nyquist_stable"] &= linf_mag < 1.0
+
+        # peaks
+        for key, num in (("sensitivity_peak", None), ("complementary_peak", "T"),
+                         ("disturbance_gain_peak", npdc), ("control_gain_peak", ncdp)):
+            f = _closed_loop_mag(nl, dl, delay, num)
+            pk, wpk = _grid_peak(f, grid)
+            out[key] = pk
+            if key in ("sensitivity_peak", "complementary_peak"):
+                out[key + "_rad_s"] = wpk
+
+        # bandwidth of T: first crossing of |T(0)|/sqrt(2)
+        ft = _closed_loop_mag(nl, dl, delay, "T")
+        t0 = np.abs(nl[:, -1] / (nl[:, -1] + dl[:, -1]))
+        level = t0 / np.sqrt(2)
+        vals = ft(grid) - level[:, None]
+        wb = _bisect_crossings(lambda w: ft(w) - level[:, None], grid, vals, first_only=True)
+        out["bandwidth_rad_s"] = np.where(t0 > 0, wb[:, 0], np.nan)
+    return out
+
+
+def _closed_loop_mag(nl, dl, delay, which):
+    """|S| (which None), |T| (which "T") or |X/(D + N e^{-sT})| for a numerator X,
+    as a function of an (N, K) frequency array (|e^{-jwT}| = 1 in any numerator)."""
+    def f(w):
+        jw = 1j * w
+        nn = batch_polyval(nl, jw) * np.exp(-delay * jw)
+        dd = batch_polyval(dl, jw)
+        if which is None:
+            top = dd
+        elif isinstance(which, str):
+            top = nn
+        else:
+            top = batch_polyval(which, jw)
+        return np.abs(top / (dd + nn))
+    return f
+
+
+def _grid_peak(f, grid, iters: int = 60):
+    """Max of f over the grid, refined by golden-section search in log-frequency."""
+    v = f(grid)
+    v = np.where(np.isfinite(v), v, -np.inf)
+    k = np.argmax(v, axis=1)
+    rows = np.arange(grid.shape[0])
+    K = grid.shape[1]
+    a = np.log(grid[rows, np.maximum(k - 1, 0)])
+    b = np.log(grid[rows, np.minimum(k + 1, K - 1)])
+    gr = (np.sqrt(5) - 1) / 2
+    c, d = b - gr * (b - a), a + gr * (b - a)
+    fc, fd = f(np.exp(c)[:, None])[:, 0], f(np.exp(d)[:, None])[:, 0]
+    for _ in range(iters):
+        left = fc > fd
+        b = np.where(left, d, b)
+        a = np.where(left, a, c)
+        c2, d2 = b - gr * (b - a), a + gr * (b - a)
+        c, d = c2, d2
+        fc, fd = f(np.exp(c)[:, None])[:, 0], f(np.exp(d)[:, None])[:, 0]
+    xm = 0.5 * (a + b)
+    fm = f(np.exp(xm)[:, None])[:, 0]
+    best = np.maximum(fm, v[rows, k])
+    return best, np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k])
+
+
+def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False):
+    """Sign changes of ``vals`` along each grid row, refined by bisection on ``fun``.
+
+    Returns an (N, M) NaN-padded array of crossing frequencies.
+    """
+    sgn = np.sign(vals)
+    ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
+    counts = ch.sum(axis=1)
+    m = max(int(counts.max()) if counts.size else 0, 1)
+    if first_only:
+        m = 1
+    out = np.full((grid.shape[0], m), np.nan)
+    rows, cols = np.nonzero(ch)
+    if rows.size == 0:
+        return out
+    order = np.cumsum(ch, axis=1)[rows, cols] - 1
+    if first_only:
+        keep = order == 0
+        rows, cols, order = rows[keep], cols[keep], order[keep]
+    a = np.log(grid[rows, cols])
+    b = np.log(grid[rows, cols + 1])
+    fa = vals[rows, cols]
+
+    def f_at(x):
+        # one call of ``fun`` per crossing index j, each on an (N, 1) frequency column
+        res = np.empty(x.size)
+        for j in range(int(order.max()) + 1):
+            sel = order == j
+            w = np.ones((grid.shape[0], 1))
+            w[rows[sel], 0] = np.exp(x[sel])
+            res[sel] = fun(w)[rows[sel], 0]
+        return res
+
+    for _ in range(iters):
+        mid = 0.5 * (a + b)
+        fm = f_at(mid)
+        same = np.sign(fm) == np.sign(fa)
+        a = np.where(same, mid, a)
+        fa = np.where(same, fm, fa)
+        b = np.where(same, b, mid)
+    out[rows, order] = np.exp(0.5 * (a + b))
+    return out
+
+
+def _nyquist_stable(nl, dl, delay, eps):
+    """Nyquist criterion on the line Re s = -eps: closed-loop RHP roots Z = P + N_cw.
+
+    P counts roots of the unreduced Dp*Dc right of -eps; N_cw is minus the net
+    change of arg(1 + L) along the line (twice the half-line, by symmetry) over 2 pi.
+    """
+    n = nl.shape[0]
+    droots = batch_roots(dl)
+    P = np.sum(np.nan_to_num(droots.real, nan=-np.inf) > -eps[:, None], axis=1)
+    u = np.linspace(0.0, 1.0, 6000)
+    lo, hi = 1e-3 * eps, 1e9 * eps
+    w = np.concatenate([np.zeros((n, 1)), lo[:, None] * (hi / lo)[:, None] ** u[None, :]], axis=1)
+    s = -eps[:, None] + 1j * w
+    F = 1 + batch_polyval(nl, s) * np.exp(-delay * s) / batch_polyval(dl, s)
+    ph = np.unwrap(np.angle(F), axis=1)
+    dphi = ph[:, -1] - ph[:, 0]
+    ncw = -2 * dphi / (2 * np.pi)
+    z = P + ncw
+    return np.abs(z) < 0.5

@@ -33,6 +33,9 @@ METRICS = [
     "acceleration_constant", "ramp_error", "certified",
 ]
 SCREEN_KEYS = ("min_damping", "min_decay_rate")
+FREQUENCY_METRICS = {"gain_margin_db", "phase_margin_deg", "delay_margin_s", "sensitivity_peak",
+                     "complementary_peak", "control_gain_peak", "disturbance_gain_peak", "bandwidth_rad_s",
+                     "position_constant", "velocity_constant", "acceleration_constant", "ramp_error"}
 
 
 @dataclass(frozen=True)
@@ -40,7 +43,7 @@ class EvalOptions:
     settling_band: float = 0.02
     pade_order: int = 6
     certify: bool = False          # exact Routh certificate for every stable row
-    screen: bool = False           # skip frequency/time work for rows failing damping/decay limits
+    screen: bool = False           # skip later work for rows already failing a cheaper requirement
 
 
 def _trailing_zeros(p: np.ndarray) -> np.ndarray:
@@ -124,6 +127,12 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
         for k, v in fm.items():
             cols.setdefault(k, np.full(n, np.nan))
             cols[k][work] = v
+    if options.screen:   # frequency-domain requirements decide before the costlier time responses
+        for key, limit in requirements.items():
+            req = REQUIREMENTS[key]
+            if req.metric in FREQUENCY_METRICS:
+                with np.errstate(invalid="ignore"):
+                    work &= slack(req, requirement_value(req, cols), float(limit)) >= 0
     if work.any():
         idx = np.flatnonzero(work)
         for start in range(0, idx.size, TIME_CHUNK):

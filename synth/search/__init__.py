@@ -1,0 +1,1 @@
+"""Search: ask for parameter vectors, tell metrics back (see DESIGN.md, "Search")."""

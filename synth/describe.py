@@ -20,6 +20,10 @@ from .lti import TransferFunction, format_poly
 from .requirements import REQUIREMENTS, requirement_value
 
 
+EXTRA_FREQUENCIES = ("phase_margin_rad_s", "gain_margin_rad_s", "gain_margin_low_rad_s",
+                     "sensitivity_peak_rad_s", "complementary_peak_rad_s")
+
+
 def jsonable(x: Any) -> Any:
     """numpy/complex/inf-aware conversion to JSON types; infinities as "inf"/"-inf", NaN as null."""
     if isinstance(x, dict):
@@ -61,6 +65,8 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     rec: dict[str, Any] = {}
     for m in METRICS:
         rec[m] = row[m]
+    for m in EXTRA_FREQUENCIES:      # where margins and peaks occur, rad/s (for plots)
+        rec[m] = row.get(m, float("nan"))
     rec["certified"] = certified
     rec["closed_loop_poles"] = sorted(cert["poles"], key=lambda z: (-z.real, z.imag))
     rec["pade_order"] = int(row["pade_order"])

@@ -358,7 +358,7 @@ def _theta_grid(nl: np.ndarray, dl: np.ndarray, points: int) -> np.ndarray:
     roots = roots[np.abs(roots) > 0]
     with np.errstate(divide="ignore"):
         ang = np.abs(np.log(roots.astype(complex)))
-    ang = ang[(ang > 1e-300) & np.isfinite(ang)]
+    ang = ang[(ang > 1e-9) & np.isfinite(ang)]          # roots at z = 1 (integrators) set no scale
     lo = min(1e-6, 1e-3 * float(ang.min())) if ang.size else 1e-6
     lo = max(lo, 1e-14)
     g = np.concatenate([np.geomspace(lo, np.pi, points), np.linspace(0.0, np.pi, points // 2 + 1)[1:]])

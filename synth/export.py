@@ -41,9 +41,9 @@ Sections
 ``closed_loop_pole``  the closed-loop poles (value, imag; damping and |s| in ``note``)
 ``discrete``          with a sample time only: ``sample_time_s``, ``method`` (in
                       ``note``: ``tustin`` or ``zoh``), ``prewarp_rad_s`` (empty when
-                      not pre-warped), ``b`` and ``a`` rows (index = delay k of z^-k, so
-                      u[k] = sum_k b_k e[k-k'] - sum_{k>=1} a_k u[k-k'], a_0 = 1) and the
-                      ``difference_equation`` as text
+                      not pre-warped), ``b`` and ``a`` rows (index = delay i of z^-i, so
+                      u[k] = sum_i b_i e[k-i] - sum_{i>=1} a_i u[k-i], with a_0 = 1 and
+                      e = reference - measurement) and the ``difference_equation`` as text
 ``discrete_check``    the ZOH-sampled plant under the discrete controller
                       (:func:`synth.discrete.discrete_loop`): ``stable`` (1/0),
                       ``spectral_radius``, ``gain_margin_db``, ``gain_margin_low_db``,

@@ -51,7 +51,7 @@ DEFAULT_FLOOR = 1e-3
 # columns rank() (re)computes; any older copies are dropped first
 RANK_COLUMNS = ("feasible", "violation", "front", "crowding", "knee", "rank")
 
-_CHUNK_ELEMENTS = 1 << 24   # bound on n_chunk * n * m booleans in the pairwise dominance
+_CHUNK_ELEMENTS = 1 << 22   # bound on n_chunk * n booleans per temporary in the pairwise dominance
 
 
 # ------------------------------------------------------------------ feasibility
@@ -142,10 +142,15 @@ def dominance_matrix(F: np.ndarray) -> np.ndarray:
     every objective and strictly better in at least one. Chunked over rows."""
     n, m = F.shape
     D = np.empty((n, n), dtype=bool)
-    step = max(1, _CHUNK_ELEMENTS // max(1, n * max(m, 1)))
+    step = max(1, _CHUNK_ELEMENTS // max(1, n))
     for i0 in range(0, n, step):
-        A = F[i0:i0 + step, None, :]
-        D[i0:i0 + step] = (A <= F[None]).all(-1) & (A < F[None]).any(-1)
+        A = F[i0:i0 + step]
+        le = np.ones((A.shape[0], n), dtype=bool)
+        lt = np.zeros((A.shape[0], n), dtype=bool)
+        for k in range(m):          # one (chunk, n) comparison per objective, no 3-D temporaries
+            le &= A[:, k, None] <= F[None, :, k]
+            lt |= A[:, k, None] < F[None, :, k]
+        D[i0:i0 + step] = le & lt
     return D
 
 

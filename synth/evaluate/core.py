@@ -213,8 +213,7 @@ def _pole_scale(char: np.ndarray) -> np.ndarray:
 
 def _time_block(rp: TransferFunction, cnum, cden, char, decay, band):
     nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
-    w0 = _pole_scale(char)
-    r = time.simulate(char, nums, w0, decay)
+    r = time.simulate(char, nums, _pole_scale(char), decay)
     return time.time_metrics(r, band)
 
 
@@ -223,3 +222,19 @@ def _pole_lists(poles: np.ndarray) -> np.ndarray:
     out = np.empty(poles.shape[0], dtype=object)
     out[:] = list(poles)
     return out
+
+
+def step_responses(plant: TransferFunction, cnum: np.ndarray, cden: np.ndarray,
+                   pade_order: int = 6) -> "time.Responses":
+    """The evaluator's own sampled responses (reference->y, load->y, reference->u) for
+    internally stable controllers, on the same time grid the metrics were computed from
+    (for plots). Raises ValueError if a loop is not stable."""
+    cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
+    rp = plant.with_pade(pade_order) if plant.delay else plant
+    char = stability.characteristic(rp.num, rp.den, cnum, cden)
+    stable, _, decay = stability.pole_summary(stability.closed_loop_poles(char))
+    if not stable.all():
+        raise ValueError("step responses are defined for internally stable loops only")
+    nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
+    with threadpool_limits(limits=1, user_api="blas"):
+        return time.simulate(char, nums, _pole_scale(char), decay)

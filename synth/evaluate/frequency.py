@@ -142,7 +142,8 @@ def rational_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, w0: np.ndarray) ->
         dd, ld = _lead(dl)
         linf = np.where(dn == dd, ln_ / ld, 0.0)
     lpts = np.concatenate([l0[:, None], lp, linf[:, None]], axis=1)
-    out.update(_gain_interval(lpts))
+    wpts = np.concatenate([np.zeros((n, 1)), np.sqrt(xp) * w0[:, None], np.full((n, 1), np.inf)], axis=1)
+    out.update(_gain_interval(lpts, wpts))
 
     # peaks of |S|, |T|, |PS|, |CS|
     out["sensitivity_peak"], out["sensitivity_peak_rad_s"] = _scaled_peak(m2d, m2c, w0)
@@ -190,21 +191,27 @@ def _margins_from_crossovers(wg: np.ndarray, lg: np.ndarray, w0: np.ndarray) -> 
     }
 
 
-def _gain_interval(lpts: np.ndarray) -> dict[str, np.ndarray]:
+def _gain_interval(lpts: np.ndarray, wpts: np.ndarray) -> dict[str, np.ndarray]:
     """Stabilising gain interval around k = 1 from loop values at phase crossovers.
 
     Where L(jw) is real and negative, the gain k = -1/L(jw) puts a closed-loop
     pole on the imaginary axis; the nearest such gains above and below 1 bound
-    the interval (gain margins; +inf / no lower limit when none exist).
+    the interval (gain margins; +inf / no lower limit when none exist). ``wpts``
+    are the frequencies (rad/s) of the points, reported for plots.
     """
+    rows = np.arange(lpts.shape[0])
     with np.errstate(invalid="ignore", divide="ignore"):
         neg = (lpts.real < 0) & (np.abs(lpts.imag) <= 1e-6 * np.abs(lpts)) & np.isfinite(lpts.real)
         kc = np.where(neg, -1.0 / lpts.real, np.nan)
-        above = np.where(kc > 1.0, kc, np.inf).min(axis=1)
-        below = np.where(kc < 1.0, kc, -np.inf).max(axis=1)
+        ka = np.where(kc > 1.0, kc, np.inf)
+        kb = np.where(kc < 1.0, kc, -np.inf)
+        ia, ib = np.argmin(ka, axis=1), np.argmax(kb, axis=1)
+        above, below = ka[rows, ia], kb[rows, ib]
         return {
             "gain_margin_db": 20 * np.log10(above),
             "gain_margin_low_db": np.where(below > 0, 20 * np.log10(np.maximum(below, 1e-300)), -np.inf),
+            "gain_margin_rad_s": np.where(np.isfinite(above), wpts[rows, ia], np.nan),
+            "gain_margin_low_rad_s": np.where(below > 0, wpts[rows, ib], np.nan),
         }
 
 
@@ -258,7 +265,8 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         linf_mag = np.where(dn == dd, np.abs(ln_ / ld), 0.0)
         # at high frequency the delayed loop turns round at |L(inf)|: every phase is reached
         lpts = np.concatenate([l0[:, None] + 0j, lp, -linf_mag[:, None] + 0j], axis=1)
-        out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan)))
+        wpts = np.concatenate([np.zeros((n, 1)), wp, np.full((n, 1), np.inf)], axis=1)
+        out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan), wpts))
         out["nyquist_stable"] &= linf_mag < 1.0
 
         # peaks

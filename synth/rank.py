@@ -353,8 +353,8 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
        (then crowding descending) if given, else by ``crowding`` descending.
        Infeasible rows follow by ``violation`` ascending (then ``primary``), with
        ``front = -1`` and ``crowding = NaN``. Remaining ties keep the input order.
-    4. ``knee`` marks the knee (:func:`knee_index`) of the finite first front;
-       ``rank`` is 1..n.
+    4. ``knee`` marks the knee (:func:`knee_index`) of the finite first front, and
+       the knee row is moved to the top; ``rank`` is 1..n.
 
     Objectives are metric column names, all minimised. Index labels are kept. The
     result is idempotent: ranking it again gives the same rows, order and columns.
@@ -407,7 +407,13 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
     knee = np.zeros(n, dtype=bool)
     first = np.flatnonzero(feasible & (front == 0) & np.all(np.isfinite(F), axis=1))
     if first.size:
-        knee[first[knee_index(F[first])]] = True
+        k = first[knee_index(F[first])]
+        knee[k] = True
+        # the knee leads the table: it is the balanced design an engineer looks at first
+        lead = np.concatenate([[k], np.delete(np.arange(n), k)])
+        out = out.iloc[lead]
+        front, crowd, viol, feasible, knee = front[lead], crowd[lead], viol[lead], feasible[lead], knee[lead]
+        order = order[lead]
 
     new = {}
     for key in requirements:

@@ -307,7 +307,7 @@ def test_rank_small_table():
     assert np.all(np.isinf(r["violation"].iloc[5:]))
     assert np.all(r["violation"].iloc[:5] == 0)
     rp = rank(df, req, ["settling_time_s", "overshoot_pct"], primary="settling_time_s")
-    assert list(rp.index) == [0, 2, 1, 3, 6, 4, 5]
+    assert list(rp.index) == [2, 0, 1, 3, 6, 4, 5]   # knee first, then by settling time
 
 
 def test_rank_drops_stale_columns_and_leaves_input_untouched():

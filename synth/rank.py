@@ -407,7 +407,9 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
     knee = np.zeros(n, dtype=bool)
     first = np.flatnonzero(feasible & (front == 0) & np.all(np.isfinite(F), axis=1))
     if first.size:
-        k = first[knee_index(F[first])]
+        Ff = F[first]
+        # objectives spanning decades (peaks, times) are compared on a log scale
+        k = first[knee_index(np.log10(Ff) if np.all(Ff > 0) else Ff)]
         knee[k] = True
         # the knee leads the table: it is the balanced design an engineer looks at first
         lead = np.concatenate([[k], np.delete(np.arange(n), k)])

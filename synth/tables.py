@@ -66,30 +66,30 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
         return "\n".join(lines + ["(no candidates)"])
     objs = list(run.spec.objectives)
     gains, zeros, poles = _zp(run, rows)
-    head = f"{'rank':>5} {'id':>7}  {'gain':>9}  {'zeros':<19} {'poles':<19}"
+    head = f"{'rank':>5} {'id':>7}  {'gain':>9}  {'zeros':<17} {'poles':<17}"
     for o in objs:
-        head += f" {SHORT.get(o, o)[:14]:>14}"
+        head += f" {SHORT.get(o, o)[:11]:>11}"
     lines.append(head)
     for i, (_, r) in enumerate(rows.iterrows()):
         mark = "*" if r.get("knee", False) else (" " if r["feasible"] else "x")
         cert = "" if (r["certified"] or not r["feasible"]) else " (uncertified)"
         z, p = _roots_text(zeros[i]), _roots_text(poles[i])
-        line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(gains[i], 4):>9}  {z[:19]:<19} {p[:19]:<19}"
+        line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(gains[i], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
         for o in objs:
-            line += f" {fmt_num(r[o], 4):>14}"
+            line += f" {fmt_num(r[o], 4):>11}"
         lines.append(line + cert)
     lines.append("   * knee of the front   x infeasible (ranked by total normalised violation)")
     reqs = dict(run.spec.requirements)
     if reqs:
         k = min(len(rows), 5)
         lines += ["", "requirement values (slack) of the first rows"]
-        head = f"{'requirement':<32}{'limit':>9}"
+        head = f"{'requirement':<30}{'limit':>9}"
         for _, r in rows.head(k).iterrows():
             head += f"{'#' + str(int(r['id'])):>12}"
         lines.append(head)
         for key, lim in reqs.items():
             req = REQUIREMENTS[key]
-            line = f"{key[:32]:<32}{fmt_num(lim, 4):>9}"
+            line = f"{key[:30]:<30}{fmt_num(lim, 4):>9}"
             for _, r in rows.head(k).iterrows():
                 v = float(requirement_value(req, r.to_dict()))
                 flag = "" if r[f"met_{key}"] else "!"

@@ -181,7 +181,9 @@ class Search:
             sob.fast_forward(self.state["sobol_drawn"])
         while self.state["sobol_drawn"] < share and self._left() > 0 and not self._out_of_time():
             n = min(SOBOL_BATCH, share - self.state["sobol_drawn"], self._left())
-            u = sob.random(n)
+            with warnings.catch_warnings():   # a last, shorter batch is fine for screening
+                warnings.simplefilter("ignore", UserWarning)
+                u = sob.random(n)
             self.state["sobol_drawn"] += n
             self.evaluate_u(u, "sobol")
 

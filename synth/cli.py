@@ -287,6 +287,24 @@ def export(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
     typer.echo(str(path))
 
 
+@app.command()
+def report(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
+           ids: list[int] = typer.Argument(None, metavar="[ID ...]",
+                                           help="candidate ids to overlay (default: the front)"),
+           output: Path = typer.Option(None, "-o", "--output", help="HTML file (default RUN/report.html)"),
+           png: Path = typer.Option(None, "--png", help="also write the figures as PNG files into this folder")) -> None:
+    """Self-contained HTML design report: step responses with the requirement bounds, open-loop
+    frequency response and margins, pole map, trade-offs, requirement tables and certificates."""
+    from .archive import ArchiveError
+    from .report import ReportError, build_report
+    run = _open(run_dir)
+    try:
+        path = build_report(run, ids or [], output, png)
+    except (ArchiveError, ReportError) as e:
+        fail(str(e))
+    typer.echo(str(path))
+
+
 def pd_concat(frames):
     import pandas as pd
     return pd.concat(frames)

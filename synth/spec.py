@@ -145,7 +145,8 @@ class Spec:
             "objectives": {"minimize": list(self.objectives)},
             "search": dict(self.search),
         }
-        lines = [f"# requirements written by synth from {self.source}", f"name = {_toml_value(self.name)}"]
+        origin = "".join(ch if ch.isprintable() else "?" for ch in self.source)   # keep the comment one line
+        lines = [f"# requirements written by synth from {origin}", f"name = {_toml_value(self.name)}"]
         for table, items in tables.items():
             lines += ["", f"[{table}]"] + [f"{k} = {_toml_value(v)}" for k, v in items.items()]
         return "\n".join(lines) + "\n"
@@ -197,9 +198,10 @@ def _is_number(value) -> bool:
 
 
 def _fmt_root(r: complex) -> str:
-    if abs(r.imag) <= HIDDEN_MODE_REL_TOL * max(1.0, abs(r)):
-        return f"{r.real:.6g}"
-    return f"{r.real:.6g}{r.imag:+.6g}j"
+    """Root for messages; parts below the matching tolerance are rounding noise and shown as 0."""
+    tol = HIDDEN_MODE_REL_TOL * max(1.0, abs(r))
+    re, im = (x if abs(x) > tol else 0.0 for x in (r.real, r.imag))
+    return f"{re:.6g}" if im == 0.0 else f"{re:.6g}{im:+.6g}j"
 
 
 def _shared_roots(num: np.ndarray, den: np.ndarray) -> list[complex]:
@@ -257,7 +259,7 @@ class _Reader:
         except OverflowError:
             raise self.error(table, key, f"{value} is too large", expected) from None
         if not math.isfinite(x):
-            raise self.error(table, key, f"got {x} (not finite)", f"a finite number ({expected})")
+            raise self.error(table, key, f"got {x} (not finite)", expected.replace("a number", "a finite number"))
         if x < lo or (lo_open and x == lo) or x > hi or (hi_open and x == hi):
             raise self.error(table, key, f"got {x:g}", expected)
         return x
@@ -281,7 +283,7 @@ class _Reader:
         expected = f"[low, high] with 0 < low < high ({what})"
         if not isinstance(value, list) or len(value) != 2:
             raise self.error(table, key, _got(value) if not isinstance(value, list)
-                             else f"got a list of {len(value)} items", expected)
+                             else f"got a list of {len(value)} item{'s' if len(value) != 1 else ''}", expected)
         lo, hi = (self.number(v, table, f"{key}[{i}]") for i, v in enumerate(value))
         if not 0 < lo < hi:
             raise self.error(table, key, f"got [{lo:g}, {hi:g}]", expected)
@@ -304,7 +306,9 @@ class _Reader:
         allowed = ("name",) + tuple(_TABLE_KEYS)
         for key in doc:
             if key not in allowed:
-                raise self.error(None, key, "unknown top-level key or table",
+                hint = difflib.get_close_matches(key, allowed, n=1)
+                raise self.error(None, key, "unknown top-level key or table"
+                                 + (f" (did you mean {hint[0]!r}?)" if hint else ""),
                                  "name or one of the tables " + ", ".join(f"[{t}]" for t in _TABLE_KEYS))
         if "plant" not in doc:
             raise self.error("plant", None, "missing table", "a [plant] table with one plant form: "

@@ -53,8 +53,23 @@ def json_rows(run: Run, df: pd.DataFrame, n: int) -> list[dict]:
     return out
 
 
+def _short(x: float) -> str:
+    """3 significant digits, compact exponent: -6.91e3 rather than -6.91e+03."""
+    t = f"{x:.3g}"
+    if "e" in t:
+        m, e = t.split("e")
+        t = f"{m}e{int(e)}"
+    return t
+
+
 def _roots_text(roots) -> str:
-    return ", ".join(fmt_complex(z, 3) for z in roots) or "-"
+    out = []
+    for z in roots:
+        if abs(z.imag) <= 1e-12 * max(1.0, abs(z)):
+            out.append(_short(z.real))
+        else:
+            out.append(f"{_short(z.real)}{'+' if z.imag >= 0 else '-'}j{_short(abs(z.imag))}")
+    return ",".join(out) or "-"
 
 
 def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:

@@ -21,7 +21,6 @@ from ..requirements import REQUIREMENTS, requirement_value, slack
 from ..structures import Family
 from . import frequency, stability, time
 
-TIME_CHUNK = 1000   # candidates per time-simulation chunk (bounds memory)
 
 METRICS = [
     "internally_stable", "hidden_modes", "closed_loop_poles", "min_damping", "decay_rate",
@@ -90,10 +89,9 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     n = cnum.shape[0]
     rp = plant.with_pade(options.pade_order) if plant.delay else plant
     char = stability.characteristic(rp.num, rp.den, cnum, cden)
-    deg = max(rp.den.size - 1 + _degree(cden), rp.num.size - 1 + _degree(cnum))
     poles = stability.closed_loop_poles(char)
     stable, damping, decay = stability.pole_summary(poles)
-    posed = stability.well_posed(char, deg) if deg < char.shape[1] else np.ones(n, bool)
+    posed = stability.well_posed(rp.num, rp.den, cnum, cden)
     hidden, hidden_txt = stability.hidden_mode_mask(plant.num, plant.den, cnum, cden)
     stable &= posed & ~hidden
 
@@ -135,11 +133,9 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
                     work &= slack(req, requirement_value(req, cols), float(limit)) >= 0
     if work.any():
         idx = np.flatnonzero(work)
-        for start in range(0, idx.size, TIME_CHUNK):
-            sl = idx[start:start + TIME_CHUNK]
-            tm = _time_block(rp, cnum[sl], cden[sl], char[sl], decay[sl], options.settling_band)
-            for k, v in tm.items():
-                cols[k][sl] = v
+        tm = _time_block(rp, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
+        for k, v in tm.items():
+            cols[k][idx] = v
 
     # undefined for unstable loops
     for k in list(cols):
@@ -195,11 +191,6 @@ def evaluate(plant: TransferFunction, family: Family, params: np.ndarray,
 
 
 # ------------------------------------------------------------------ helpers
-def _degree(p: np.ndarray) -> int:
-    nz = np.flatnonzero(np.any(p != 0, axis=0))
-    return p.shape[1] - 1 - (nz[0] if nz.size else p.shape[1] - 1)
-
-
 def _pole_scale(char: np.ndarray) -> np.ndarray:
     """Geometric mean of the pole magnitudes, |char(0)/lead|^(1/n), per row."""
     n = char.shape[1] - 1
@@ -211,10 +202,9 @@ def _pole_scale(char: np.ndarray) -> np.ndarray:
     return np.where(np.isfinite(w0) & (w0 > 0), w0, 1.0)
 
 
-def _time_block(rp: TransferFunction, cnum, cden, char, decay, band):
+def _time_block(rp: TransferFunction, cnum, cden, char, decay, poles, band):
     nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
-    r = time.simulate(char, nums, _pole_scale(char), decay)
-    return time.time_metrics(r, band)
+    return time.grouped_time_metrics(char, nums, _pole_scale(char), decay, poles, band)
 
 
 def _pole_lists(poles: np.ndarray) -> np.ndarray:
@@ -232,9 +222,10 @@ def step_responses(plant: TransferFunction, cnum: np.ndarray, cden: np.ndarray,
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
     rp = plant.with_pade(pade_order) if plant.delay else plant
     char = stability.characteristic(rp.num, rp.den, cnum, cden)
-    stable, _, decay = stability.pole_summary(stability.closed_loop_poles(char))
+    poles = stability.closed_loop_poles(char)
+    stable, _, decay = stability.pole_summary(poles)
     if not stable.all():
         raise ValueError("step responses are defined for internally stable loops only")
     nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
     with threadpool_limits(limits=1, user_api="blas"):
-        return time.simulate(char, nums, _pole_scale(char), decay)
+        return time.simulate(char, nums, _pole_scale(char), decay, poles)

@@ -42,11 +42,22 @@ def closed_loop_poles(char: np.ndarray) -> np.ndarray:
     return batch_roots(char)
 
 
-def well_posed(char: np.ndarray, expected_degree: int) -> np.ndarray:
-    """1 + L(inf) != 0: the characteristic polynomial keeps its full degree."""
-    lead = char[:, char.shape[1] - 1 - expected_degree]
-    scale = np.max(np.abs(char), axis=1)
-    return np.abs(lead) > 1e-12 * scale
+def well_posed(np_, dp, nc: np.ndarray, dc: np.ndarray) -> np.ndarray:
+    """1 + L(inf) != 0: the leading terms of Dp*Dc and Np*Nc do not cancel.
+
+    Only a biproper loop can fail; the test compares the two leading coefficients
+    of the full degree with each other (relative 1e-12), not with the rest of the
+    polynomial, whose coefficients may span many decades.
+    """
+    a = batch_conv(dc, dp)
+    b = batch_conv(nc, np_)
+    m = max(a.shape[1], b.shape[1])
+    a = np.pad(a, ((0, 0), (m - a.shape[1], 0)))
+    b = np.pad(b, ((0, 0), (m - b.shape[1], 0)))
+    nz = (a != 0) | (b != 0)
+    first = np.argmax(np.any(nz, axis=0))     # full degree of the batch
+    la, lb = a[:, first], b[:, first]
+    return np.abs(la + lb) > 1e-12 * (np.abs(la) + np.abs(lb))
 
 
 # ------------------------------------------------------------------ hidden modes

@@ -6,11 +6,16 @@ P S = Np Dc/Delta, reference -> control C S = Nc Dp/Delta. One controllable
 canonical realisation of 1/Delta (in time scaled by w0, the geometric mean of the
 pole magnitudes, for conditioning) is discretised by the zero-order-hold matrix
 exponential (Van Loan, IEEE TAC 23, 1978), which is exact at the sample instants
-for a step input. The grid starts fine and doubles its step in segments so that
-a slow closed-loop pole (a lag dipole) and fast transients are both resolved.
-Between samples the outputs are interpolated by cubic Hermite polynomials from
-exact values and exact derivatives, which is how settling and rise times and
-peaks are refined.
+for a step input.
+
+The grid is planned per candidate from its closed-loop poles: the first step
+resolves the fastest pole (RESOLUTION/|p| in scaled time), and the step doubles
+at a segment boundary only while every mode still alive (e^(-sigma t) above
+e^-ALIVE_DECAYS) keeps at least 2 pi/RESOLUTION samples per radian of its
+frequency; the horizon is HORIZON_DECAYS/decay rate. Candidates are simulated in
+groups of similar grid length. Peaks and threshold crossings are refined inside
+their sample interval on 16 extra exact samples (one more matrix exponential),
+then by cubic Hermite interpolation from exact values and exact derivatives.
 """
 
 from __future__ import annotations
@@ -20,43 +25,96 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import expm
 
-FIRST_SEGMENT = 240      # samples at the finest step
-SEGMENTS = 10            # further segments, each with the step doubled
-SEGMENT_SAMPLES = 64
-SPAN = FIRST_SEGMENT + SEGMENT_SAMPLES * (2 ** (SEGMENTS + 1) - 2)   # horizon in finest steps
+FIRST_SEGMENT = 256      # samples at the finest step (a multiple of SEGMENT_SAMPLES)
+SEGMENT_SAMPLES = 64     # samples per later segment (the step may double between segments)
 HORIZON_DECAYS = 14.0    # horizon = this / decay rate (e^-14 ~ 1e-6 of a unit residue)
+ALIVE_DECAYS = 16.0      # a mode counts as alive while sigma * t < this
+RESOLUTION = 0.5         # largest step * |pole| for a mode still alive
+MAX_SAMPLES = 1 << 15    # cap per candidate; beyond it the horizon is cut (settling then reads inf)
+SUBSAMPLES = 16          # exact sub-samples inside an interval being refined
 
 
 @dataclass
 class Responses:
-    """Sampled responses (N candidates, K samples); times in seconds."""
-    t: np.ndarray          # (N, K)
-    y: np.ndarray          # (N, K, 3): reference->y, load->y, reference->u
-    dy: np.ndarray         # (N, K, 3): exact time derivatives (right limits)
-    final: np.ndarray      # (N, 3): final values (DC gains)
+    """Sampled responses of N candidates; times in seconds.
+
+    ``y``/``dy`` are (N, K, 3): reference->y, load->y, reference->u and their exact
+    time derivatives (right limits). The realisation (scaled time) is kept so that
+    intervals can be refined exactly.
+    """
+    t: np.ndarray          # (N, K) seconds
+    y: np.ndarray          # (N, K, 3)
+    dy: np.ndarray         # (N, K, 3) per second
+    final: np.ndarray      # (N, 3) final values (DC gains)
+    X: np.ndarray | None = None      # (N, K, n) states
+    A: np.ndarray | None = None      # (N, n, n) scaled-time realisation
+    C: np.ndarray | None = None      # (N, 3, n)
+    D: np.ndarray | None = None      # (N, 3)
+    w0: np.ndarray | None = None     # (N,) time scale
 
 
 def _pad_to(p: np.ndarray, m: int) -> np.ndarray:
     return np.pad(p, ((0, 0), (m - p.shape[1], 0)))
 
 
-def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np.ndarray) -> Responses:
-    """Unit-step responses of nums[i]/char for stable candidates (decay > 0)."""
+def plan(poles_s: np.ndarray, t_end: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-candidate first step h0, doubling flags (N, S) and number of segments needed.
+
+    ``poles_s`` are the closed-loop poles in scaled time (NaN padded), ``t_end`` the
+    scaled horizons.
+    """
+    n = t_end.shape[0]
+    mag = np.abs(poles_s)
+    sig = np.where(np.isnan(poles_s.real), np.inf, -poles_s.real)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        need = np.where(np.isnan(mag) | (mag == 0), np.inf, RESOLUTION / mag)
+    pmax = np.nanmax(np.where(np.isnan(mag), 0.0, mag), axis=1) if mag.shape[1] else np.ones(n)
+    with np.errstate(divide="ignore"):
+        h0 = np.minimum(np.where(pmax > 0, RESOLUTION / pmax, np.inf), t_end / FIRST_SEGMENT)
+    h0 = np.where(np.isfinite(h0) & (h0 > 0), h0, 1.0)
+    t = FIRST_SEGMENT * h0
+    h = h0.copy()
+    done = t >= t_end
+    flags, nseg = [], np.zeros(n, dtype=int)
+    for _ in range((MAX_SAMPLES - FIRST_SEGMENT) // SEGMENT_SAMPLES):
+        if done.all():
+            break
+        alive = sig * t[:, None] < ALIVE_DECAYS
+        hreq = np.min(np.where(alive, need, np.inf), axis=1) if need.shape[1] else np.full(n, np.inf)
+        dbl = (2 * h <= hreq) & ~done
+        h = np.where(dbl, 2 * h, h)
+        flags.append(dbl)
+        t = t + SEGMENT_SAMPLES * h
+        nseg += ~done
+        done |= t >= t_end
+    return h0, (np.array(flags).T if flags else np.zeros((n, 0), bool)), nseg
+
+
+def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np.ndarray,
+             poles: np.ndarray | None = None) -> Responses:
+    """Unit-step responses of nums[i]/char for stable candidates (decay > 0), one grid layout.
+
+    ``poles`` (unscaled, NaN padded) plan the grid; computed from ``char`` if omitted.
+    """
+    char = np.atleast_2d(np.asarray(char, float))
+    m = char.shape[1]
+    nums = [_pad_to(np.atleast_2d(b), m) for b in nums]
+    while char.shape[1] > 1 and not np.any(char[:, 0]):      # leading zeros common to every row
+        char, nums = char[:, 1:], [b[:, 1:] for b in nums]
     n_c = char.shape[0]
     order = char.shape[1] - 1
     powers = np.arange(order, -1, -1)
     sc = w0[:, None] ** powers                       # s = w0 * s_hat
     a = char * sc
-    a = a / a[:, :1]
-    bs = [(_pad_to(b, order + 1) * sc) / (char[:, :1] * sc[:, :1]) for b in nums]
+    lead = a[:, :1]
+    a = a / lead
+    bs = [b * sc / lead for b in nums]
     final = np.stack([b[:, -1] / a[:, -1] for b in bs], axis=1)
     if order == 0:   # static loop
-        t = np.zeros((n_c, 2))
-        t[:, 1] = 1.0
+        t = np.tile([0.0, 1.0], (n_c, 1))
         y = np.repeat(np.stack([b[:, 0] for b in bs], axis=1)[:, None, :], 2, axis=1)
         return Responses(t, y, np.zeros_like(y), final)
 
-    # controllable canonical form, x' = A x + B u, y = C x + D u
     A = np.zeros((n_c, order, order))
     A[:, 0, :] = -a[:, 1:]
     if order > 1:
@@ -64,42 +122,94 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
     C = np.stack([b[:, 1:] - b[:, :1] * a[:, 1:] for b in bs], axis=1)    # (N, 3, n)
     D = np.stack([b[:, 0] for b in bs], axis=1)                            # (N, 3)
 
-    # horizon in scaled time; cap the ratio to the fastest pole so the first step resolves it
+    if poles is None:
+        from ..lti import batch_roots
+        poles = batch_roots(char)
     t_end = HORIZON_DECAYS / (decay / w0)
-    h0 = t_end / SPAN
-    M = np.zeros((n_c, order + 1, order + 1))
-    M[:, :order, :order] = A * h0[:, None, None]
-    M[:, 0, order] = h0
-    E = expm(M)
-    phi, gam = E[:, :order, :order], E[:, :order, order]
+    h0, flags, nseg = plan(poles / w0[:, None], t_end)
+    segs = int(nseg.max()) if nseg.size else 0
+    phi, gam = _zoh(A, h0)
 
-    ks = [FIRST_SEGMENT] + [SEGMENT_SAMPLES] * SEGMENTS
-    total = sum(ks) + 1
-    # batch on the last axis: each step is n^2 contiguous vector operations
-    pt = np.ascontiguousarray(phi.transpose(1, 2, 0))
+    total = FIRST_SEGMENT + SEGMENT_SAMPLES * segs + 1
+    M = SEGMENT_SAMPLES
+    pt = np.ascontiguousarray(phi.transpose(1, 2, 0))     # batch on the last axis
     gt = np.ascontiguousarray(gam.T)
     X = np.zeros((total, order, n_c))
     T = np.zeros((total, n_c))
     x = np.zeros((order, n_c))
-    idx, tcur, h = 1, np.zeros(n_c), h0.copy()
-    for seg, k in enumerate(ks):
-        if seg > 0:   # double the step: Phi(2h) = Phi^2, Gamma(2h) = Phi Gamma + Gamma
-            gt = (pt * gt[None]).sum(axis=1) + gt
-            pt = np.einsum("ijn,jkn->ikn", pt, pt)
-            h = 2 * h
-        for _ in range(k):
-            x = (pt * x[None]).sum(axis=1) + gt
-            tcur = tcur + h
-            X[idx] = x
-            T[idx] = tcur
-            idx += 1
+    tcur, h = np.zeros(n_c), h0.copy()
+    P = G = None
+    first_blocks = FIRST_SEGMENT // M
+    for b in range(first_blocks + segs):
+        seg = max(0, b - first_blocks + 1)
+        d = flags[:, seg - 1] if seg > 0 and b >= first_blocks else np.zeros(n_c, bool)
+        if d.any():   # Phi(2h) = Phi^2, Gamma(2h) = Phi Gamma + Gamma, where the plan doubles
+            gt = np.where(d[None, :], (pt * gt[None]).sum(axis=1) + gt, gt)
+            pt = np.where(d[None, None, :], np.einsum("ijn,jkn->ikn", pt, pt), pt)
+            h = np.where(d, 2 * h, h)
+        if P is None or d.any():
+            # a block of M steps at once: x_j = Phi^j x_0 + G_j, G_j = sum_{i<j} Phi^i Gamma
+            # built by doubling: Phi^(k+j) = Phi^j Phi^k, G_(k+j) = Phi^j G_k + G_j
+            P = np.empty((M, order, order, n_c))
+            G = np.empty((M, order, n_c))
+            P[0], G[0] = pt, gt
+            k = 1
+            while k < M:
+                P[k:2 * k] = np.einsum("mijn,jkn->mikn", P[:k], P[k - 1])
+                G[k:2 * k] = np.einsum("mijn,jn->min", P[:k], G[k - 1]) + G[:k]
+                k *= 2
+        i0 = 1 + b * M
+        X[i0:i0 + M] = np.einsum("mijn,jn->min", P, x) + G
+        T[i0:i0 + M] = tcur + h * np.arange(1, M + 1)[:, None]
+        x = X[i0 + M - 1]
+        tcur = tcur + M * h
+    # outputs in the (K, n, N) layout: contiguous over candidates, no small-matrix products
+    CA = C @ A
+    y = np.empty((total, n_c, 3))
+    dy = np.empty((total, n_c, 3))
+    for o in range(3):
+        y[:, :, o] = (X * C[:, o, :].T[None]).sum(axis=1) + D[:, o]
+        dy[:, :, o] = (X * CA[:, o, :].T[None]).sum(axis=1) + C[:, o, 0]
     X = X.transpose(2, 0, 1)                                   # (N, K, n)
-    T = T.T
+    return Responses(T.T / w0[:, None], y.transpose(1, 0, 2), dy.transpose(1, 0, 2) * w0[:, None, None],
+                     final, X, A, C, D, w0)
+
+
+def _zoh(A: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Batched zero-order-hold pair (Phi, Gamma) for x' = A x + e1 u over steps h (N,)."""
+    n_c, order = A.shape[0], A.shape[1]
+    M = np.zeros((n_c, order + 1, order + 1))
+    M[:, :order, :order] = A * h[:, None, None]
+    M[:, 0, order] = h
+    E = expm(M)
+    return E[:, :order, :order], E[:, :order, order]
+
+
+def _outputs(X, A, C, D):
     y = X @ C.transpose(0, 2, 1) + D[:, None, :]
     xdot = X @ A.transpose(0, 2, 1)
-    xdot[:, :, 0] += 1.0
-    dy = xdot @ C.transpose(0, 2, 1)
-    return Responses(T / w0[:, None], y, dy * w0[:, None, None], final)
+    xdot[..., 0] += 1.0
+    return y, xdot @ C.transpose(0, 2, 1)
+
+
+def fine(r: Responses, k: np.ndarray, out: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exact sub-samples of output ``out`` inside interval [k, k+1] of each row.
+
+    Returns times (N, S+1) in seconds, values and derivatives, S = SUBSAMPLES.
+    """
+    rows = np.arange(r.t.shape[0])
+    k = np.clip(k, 0, r.t.shape[1] - 2)
+    hs = (r.t[rows, k + 1] - r.t[rows, k]) * r.w0 / SUBSAMPLES       # scaled sub-step
+    phi, gam = _zoh(r.A, hs)
+    x = r.X[rows, k]
+    xs = [x]
+    for _ in range(SUBSAMPLES):
+        x = np.einsum("nij,nj->ni", phi, x) + gam
+        xs.append(x)
+    Xf = np.stack(xs, axis=1)
+    y, dy = _outputs(Xf, r.A, r.C[:, out:out + 1], r.D[:, out:out + 1])
+    tf = r.t[rows, k][:, None] + np.arange(SUBSAMPLES + 1)[None, :] * (hs / r.w0)[:, None]
+    return tf, y[..., 0], dy[..., 0] * r.w0[:, None]
 
 
 # ----------------------------------------------------------- Hermite helpers
@@ -111,6 +221,36 @@ def _hermite(t0, t1, y0, y1, d0, d1, tau):
     h01 = -2 * tau ** 3 + 3 * tau ** 2
     h11 = tau ** 3 - tau ** 2
     return h00 * y0 + h10 * h * d0 + h01 * y1 + h11 * h * d1
+
+
+def interval_max(t, y, dy):
+    """Maximum of the cubic Hermite interpolant on each sample interval, (N, K-1).
+
+    From exact samples and derivatives: a crest between two samples exists where
+    the derivative falls from positive to negative, and there the cubic's
+    stationary point solves a quadratic. This finds crests the samples miss,
+    which would otherwise misplace a peak or a last exit from the settling band.
+    """
+    best = np.maximum(y[:, :-1], y[:, 1:])
+    i, j = np.nonzero((dy[:, :-1] > 0) & (dy[:, 1:] < 0))
+    if i.size == 0:
+        return best
+    h = t[i, j + 1] - t[i, j]
+    y0, y1, d0, d1 = y[i, j], y[i, j + 1], dy[i, j] * h, dy[i, j + 1] * h
+    c3 = 2 * y0 + d0 - 2 * y1 + d1
+    c2 = -3 * y0 - 2 * d0 + 3 * y1 - d1
+    qa, qb, qc = 3 * c3, 2 * c2, d0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        disc = np.sqrt(np.maximum(qb * qb - 4 * qa * qc, 0.0))
+        # the root where p' goes from + to -: numerically stable form of the quadratic formula
+        q = -0.5 * (qb + np.copysign(disc, qb))
+        r1, r2 = q / qa, qc / q
+        tau = np.where((r1 > 0) & (r1 < 1), r1, r2)
+        tau = np.where(np.abs(qa) < 1e-300, -qc / qb, tau)
+    tau = np.clip(np.nan_to_num(tau, nan=0.5), 0.0, 1.0)
+    crest = ((c3 * tau + c2) * tau + d0) * tau + y0
+    best[i, j] = np.maximum(best[i, j], crest)
+    return best
 
 
 def _crossing_time(t, y, dy, k, level, iters: int = 40):
@@ -129,8 +269,8 @@ def _crossing_time(t, y, dy, k, level, iters: int = 40):
     return t0 + 0.5 * (lo + hi) * (t1 - t0)
 
 
-def _refined_max(t, v, dv):
-    """max over time of v (N, K) with cubic refinement next to the largest sample."""
+def _cubic_max(t, v, dv):
+    """max of v (N, K) with cubic refinement next to the largest sample."""
     rows = np.arange(t.shape[0])
     k = np.argmax(v, axis=1)
     best = v[rows, k]
@@ -144,66 +284,114 @@ def _refined_max(t, v, dv):
     return best
 
 
-def _settling(t, y, dy, final, band_abs):
+def refined_peak(r: Responses, out: int, sign: np.ndarray) -> np.ndarray:
+    """sup over t of sign*y_out(t): the interval whose cubic crest is highest is
+    re-sampled exactly and refined; never below sign*final (approached as t -> inf)."""
+    v = r.y[:, :, out] * sign[:, None]
+    dv = r.dy[:, :, out] * sign[:, None]
+    k = np.argmax(interval_max(r.t, v, dv), axis=1)
+    tf, yf, df = fine(r, k, out)
+    best = np.maximum(_cubic_max(tf, yf * sign[:, None], df * sign[:, None]), v.max(axis=1))
+    return np.maximum(best, r.final[:, out] * sign)
+
+
+def refined_crossing(r: Responses, out: int, k: np.ndarray, level: np.ndarray, offset: np.ndarray,
+                     absolute: bool, last: bool) -> np.ndarray:
+    """Time where e = y_out - offset (or |e| when ``absolute``) crosses ``level`` inside
+    interval k: the first or last crossing among the exact sub-samples, refined by
+    Hermite bisection."""
+    tf, yf, df = fine(r, k, out)
+    ef = yf - offset[:, None]
+    if absolute:
+        df = np.sign(ef) * df
+        ef = np.abs(ef)
+    s = np.sign(ef - level[:, None])
+    ch = s[:, :-1] * s[:, 1:] <= 0
+    j = (SUBSAMPLES - 1 - np.argmax(ch[:, ::-1], axis=1)) if last else np.argmax(ch, axis=1)
+    j = np.where(ch.any(axis=1), j, 0)
+    return _crossing_time(tf, ef, df, j, level)
+
+
+def _settling(r: Responses, out: int, band_abs: np.ndarray) -> np.ndarray:
     """Last time |y - final| leaves the band; inf if still outside at the horizon."""
+    y, dy = r.y[:, :, out], r.dy[:, :, out]
+    final = r.final[:, out]
     e = y - final[:, None]
-    outside = np.abs(e) > band_abs[:, None]
+    crest = np.maximum(interval_max(r.t, e, dy), interval_max(r.t, -e, -dy))
+    outside = crest > band_abs[:, None]
     any_out = outside.any(axis=1)
-    last = t.shape[1] - 1 - np.argmax(outside[:, ::-1], axis=1)
-    at_end = last == t.shape[1] - 1
-    # the crossing of the band edge on the side where the response was outside
-    edge = np.sign(e[np.arange(t.shape[0]), last]) * band_abs
-    ts = _crossing_time(t, e, dy, last, edge)
+    last = outside.shape[1] - 1 - np.argmax(outside[:, ::-1], axis=1)
+    at_end = np.abs(e[:, -1]) > band_abs
+    ts = refined_crossing(r, out, last, band_abs, final, absolute=True, last=True)
     return np.where(~any_out, 0.0, np.where(at_end, np.inf, ts))
 
 
-def _abs_integral(t, y, dy):
-    """Integral of |y| over the grid: Simpson's rule with Hermite midpoints."""
+def _simpson(t, y, dy, absolute: bool):
     h = np.diff(t, axis=1)
     ym = 0.5 * (y[:, :-1] + y[:, 1:]) + h * (dy[:, :-1] - dy[:, 1:]) / 8
-    return np.sum(h / 6 * (np.abs(y[:, :-1]) + 4 * np.abs(ym) + np.abs(y[:, 1:])), axis=1)
+    f = np.abs if absolute else (lambda v: v)
+    return np.sum(h / 6 * (f(y[:, :-1]) + 4 * f(ym) + f(y[:, 1:])), axis=1)
 
 
 def integral(t, y, dy):
     """Signed integral of y over the grid (Simpson with Hermite midpoints)."""
-    h = np.diff(t, axis=1)
-    ym = 0.5 * (y[:, :-1] + y[:, 1:]) + h * (dy[:, :-1] - dy[:, 1:]) / 8
-    return np.sum(h / 6 * (y[:, :-1] + 4 * ym + y[:, 1:]), axis=1)
+    return _simpson(t, y, dy, absolute=False)
 
 
 def time_metrics(r: Responses, band: float) -> dict[str, np.ndarray]:
     """Step-response metrics from sampled responses (see the DESIGN definitions)."""
-    t = r.t
-    yr, dr = r.y[:, :, 0], r.dy[:, :, 0]
-    yd, dd = r.y[:, :, 1], r.dy[:, :, 1]
-    yu, du = r.y[:, :, 2], r.dy[:, :, 2]
+    n = r.t.shape[0]
+    yr = r.y[:, :, 0]
     yf = r.final[:, 0]
     sg = np.where(yf < 0, -1.0, 1.0)
+    ones = np.ones(n)
     with np.errstate(invalid="ignore", divide="ignore"):
-        peak = _refined_max(t, yr * sg[:, None], dr * sg[:, None])
+        peak = refined_peak(r, 0, sg)
         overshoot = np.maximum(0.0, (peak - np.abs(yf)) / np.abs(yf) * 100)
-        ysn, dsn = yr * sg[:, None], dr * sg[:, None]
+        ysn = yr * sg[:, None]
         rise = []
+        crest = interval_max(r.t, ysn, r.dy[:, :, 0] * sg[:, None])
         for frac in (0.1, 0.9):
             lvl = frac * np.abs(yf)
-            above = ysn >= lvl[:, None]
-            k = np.argmax(above, axis=1) - 1
-            tr = _crossing_time(t, ysn, dsn, k, lvl)
+            above = crest >= lvl[:, None]
+            k = np.argmax(above, axis=1)
+            tr = refined_crossing(r, 0, k, lvl * sg, np.zeros(n), absolute=False, last=False)
             rise.append(np.where(above.any(axis=1), tr, np.inf))
-        settle = _settling(t, yr, dr, yf, band * np.abs(yf))
+        settle = _settling(r, 0, band * np.abs(yf))
         ydf = r.final[:, 1]
-        dpeak_abs = np.maximum(_refined_max(t, yd, dd), _refined_max(t, -yd, -dd))
-        dsettle = _settling(t, yd, dd, ydf, band * dpeak_abs)
-        iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak_abs, 1e-300), np.inf, _abs_integral(t, yd, dd))
-        upeak = np.maximum(_refined_max(t, yu, du), _refined_max(t, -yu, -du))
+        dpeak = np.maximum(refined_peak(r, 1, ones), refined_peak(r, 1, -ones))
+        dsettle = _settling(r, 1, band * dpeak)
+        iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak, 1e-300), np.inf,
+                       _simpson(r.t, r.y[:, :, 1], r.dy[:, :, 1], absolute=True))
+        upeak = np.maximum(refined_peak(r, 2, ones), refined_peak(r, 2, -ones))
     return {
         "settling_time_s": np.where(yf != 0, settle, np.inf),
         "overshoot_pct": np.where(yf != 0, overshoot, np.nan),
         "rise_time_s": np.where(yf != 0, rise[1] - rise[0], np.inf),
         "steady_state_error": np.abs(1.0 - yf),
-        "disturbance_peak": dpeak_abs,
+        "disturbance_peak": dpeak,
         "disturbance_settling_time_s": dsettle,
         "disturbance_steady_state": ydf,
         "disturbance_iae": iae,
         "control_peak": upeak,
     }
+
+
+def grouped_time_metrics(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np.ndarray,
+                         poles: np.ndarray, band: float, chunk_samples: int = 1 << 20) -> dict[str, np.ndarray]:
+    """time_metrics for a batch, simulated in groups of similar grid length (bounded memory)."""
+    n = char.shape[0]
+    t_end = HORIZON_DECAYS / (decay / w0)
+    _, _, nseg = plan(poles / w0[:, None], t_end)
+    length = FIRST_SEGMENT + SEGMENT_SAMPLES * nseg
+    bucket = np.ceil(np.log2(length)).astype(int)
+    out: dict[str, np.ndarray] = {}
+    for b in np.unique(bucket):
+        idx = np.flatnonzero(bucket == b)
+        per = max(1, chunk_samples // int(2 ** b))
+        for s in range(0, idx.size, per):
+            sl = idx[s:s + per]
+            r = simulate(char[sl], [x[sl] for x in nums], w0[sl], decay[sl], poles[sl])
+            for key, v in time_metrics(r, band).items():
+                out.setdefault(key, np.full(n, np.nan))[sl] = v
+    return out

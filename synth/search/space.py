@@ -166,7 +166,9 @@ def build_space(plant: TransferFunction, controller, requirements: dict) -> Spac
     infeasible: list[str] = []
     hf_max = None
     umax = requirements.get("max_control_peak")
-    if umax is not None and strictly_proper:
+    # a proper controller with C(inf) != 0 jumps to u(0+) = C(inf); with an integrator it starts at 0
+    biproper = not (fam.kind == "lead-lag" and fam.integrator)
+    if umax is not None and strictly_proper and biproper:
         hf_max = np.log10(umax)
         if fam.kind == "lead-lag" and hf_max < g1:
             g1 = hf_max

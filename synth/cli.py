@@ -113,11 +113,12 @@ def _finish_design(run, as_json: bool, top: int, report: bool) -> None:
 
 
 def _write_report(run, ids, out, png):
+    from .archive import ArchiveError
+    from .report import ReportError, build_report
     try:
-        from .report import build_report
-    except ImportError:
-        fail("--report: the report module is not available in this version")
-    path = build_report(run, ids, out, png)
+        path = build_report(run, ids, out, png)
+    except (ReportError, ArchiveError) as e:
+        fail(f"--report: {e}")
     typer.echo(f"report: {path}", err=True)
 
 

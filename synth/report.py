@@ -49,6 +49,7 @@ from . import CAUTION, __version__
 from .describe import check_controller, fmt_complex, fmt_num
 from .evaluate import step_responses
 from .evaluate.stability import hidden_mode_mask
+from .evaluate.time import HORIZON_DECAYS
 from .lti import TransferFunction, poly_from_roots
 from .requirements import REQUIREMENTS
 from .runs import Run, controller_of, find_row, ranked
@@ -360,7 +361,9 @@ def _windowed(c: Candidate, t_end: float, col: int) -> tuple[np.ndarray, np.ndar
     k = int(np.searchsorted(t, t_end, side="right"))
     k = min(max(k + 1, 2), t.size)
     tt, yy = t[:k], c.steps.y[:k, col]
-    if tt[-1] < t_end:   # past the evaluator's horizon the response equals its final value (to e^-14)
+    decay = float(c.record["decay_rate"])
+    full = _finite(decay) and decay > 0 and t[-1] >= 0.999 * HORIZON_DECAYS / decay
+    if tt[-1] < t_end and full:   # past the evaluator's full horizon the response equals its final value
         tt, yy = np.append(tt, t_end), np.append(yy, c.steps.final[col])
     return tt, yy
 
@@ -447,8 +450,9 @@ def reference_step_data(cands: list[Candidate], requirements: dict, settling_ban
     p.ylim = _ylim(ys)
     p.notes += _no_steps_note(cands)
     cap = ("Unit step of the reference, sampled exactly (zero-order-hold matrix exponential) on the "
-           "evaluator's own time grid; beyond the grid's end (14 time constants of the slowest closed-loop "
-           "pole) a curve is held at its exact final value. Grey hatching marks where the output would "
+           f"evaluator's own time grid; beyond the grid's end ({HORIZON_DECAYS:g} time constants of the "
+           f"slowest closed-loop pole, where the transient has decayed by e^-{HORIZON_DECAYS:g}) a curve is held "
+           "at its exact final value. Grey hatching marks where the output would "
            "violate a requirement: above the overshoot limit, and outside the settling band after the "
            "settling-time limit. The bar from t = 0 has the length of the allowed 10-90 % rise time.")
     if normalised:

@@ -31,6 +31,7 @@ OBJECTIVE_METRICS = (
     "settling_time_s", "overshoot_pct", "rise_time_s", "steady_state_error", "disturbance_peak",
     "disturbance_settling_time_s", "disturbance_iae", "control_peak", "sensitivity_peak",
     "complementary_peak", "disturbance_gain_peak", "control_gain_peak", "bandwidth_rad_s",
+    "controller_hf_gain",
 )
 DEFAULT_OBJECTIVES = ("settling_time_s", "disturbance_peak", "control_peak")
 SEARCH_DEFAULTS = MappingProxyType({"budget": 20000, "time_limit_s": 30.0, "seed": 0})

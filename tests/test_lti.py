@@ -22,11 +22,6 @@ HYP = settings(max_examples=40, deadline=None)
 s = sp.symbols("s")
 
 
-def sorted_roots(r):
-    r = np.asarray(r, dtype=complex)
-    return r[np.lexsort((np.round(r.imag, 6), np.round(r.real, 6)))]
-
-
 def assert_same_roots(got, ref, tol):
     """Each reference root matched to a distinct computed root within tol * max(1, |root|)."""
     got, ref = list(np.asarray(got, complex)), np.asarray(ref, complex)

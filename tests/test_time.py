@@ -141,7 +141,7 @@ def _ref_crossing(t, y, level):
 
 
 @pytest.mark.parametrize("name, horizon", [
-    ("zeta_0.5", 12.0), ("zeta_0.7", 12.0), ("ogata_lead", 3.0), ("ogata_lag", 80.0),
+    ("zeta_0.5", 12.0), ("zeta_0.7", 12.0), ("zeta_0.05", 100.0), ("ogata_lead", 3.0), ("ogata_lag", 80.0),
     ("unstable_integral_lead", 20.0), ("rhp_zero_zn_pi", 250.0)])
 def test_settling_rise_and_peaks_within_one_reference_sample(name, horizon):
     if name.startswith("zeta"):

@@ -146,6 +146,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     cols["hidden_modes"] = np.array(hidden_txt, dtype=object)
     cols["closed_loop_poles"] = _pole_lists(poles)
     cols["pade_order"] = np.full(n, options.pade_order if plant.delay else 0)
+    cols["controller_hf_gain"] = controller_hf_gain(cnum, cden)
     cols["certified"] = np.zeros(n, dtype=bool)
     if options.certify:
         for i in np.flatnonzero(stable):
@@ -153,6 +154,17 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
 
     df = pd.DataFrame(cols)
     return add_slack(df, requirements)
+
+
+def controller_hf_gain(cnum: np.ndarray, cden: np.ndarray) -> np.ndarray:
+    """|C(inf)|: the controller's high-frequency gain, how much measurement noise it passes
+    straight to the actuator (0 for a strictly proper controller)."""
+    nz_n = np.argmax(cnum != 0, axis=1) + (cden.shape[1] - cnum.shape[1])
+    nz_d = np.argmax(cden != 0, axis=1)
+    rows = np.arange(cnum.shape[0])
+    lead_n = cnum[rows, np.argmax(cnum != 0, axis=1)]
+    lead_d = cden[rows, nz_d]
+    return np.where(nz_n == nz_d, np.abs(lead_n / lead_d), 0.0)
 
 
 def add_slack(df: pd.DataFrame, requirements: Mapping[str, float]) -> pd.DataFrame:

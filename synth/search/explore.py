@@ -31,6 +31,7 @@ from .seeds import seeds as classical_seeds
 from .space import Space, build_space
 
 SOBOL_BATCH = 2048
+MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
 OPTUNA_BATCH = 32
 OBJECTIVE_FLOOR = 1e-9
 
@@ -70,7 +71,7 @@ class Search:
         self.on_batch = on_batch
         self.on_progress = on_progress
         self.frames: list[pd.DataFrame] = []
-        self.state = {"phase": "seeds", "evaluated": 0, "sobol_drawn": 0, "optuna_done": 0,
+        self.state = {"phase": "seeds", "evaluated": 0, "sobol_drawn": 0, "sobol_evaluated": 0, "optuna_done": 0,
                       "polish_rounds": 0, "next_id": 1, "first_feasible_s": None, "search_s": 0.0}
         self._t0 = 0.0
         self._feasible = 0
@@ -179,13 +180,17 @@ class Search:
         sob = qmc.Sobol(self.space.dim, scramble=True, seed=self.settings.seed)
         if self.state["sobol_drawn"]:
             sob.fast_forward(self.state["sobol_drawn"])
-        while self.state["sobol_drawn"] < share and self._left() > 0 and not self._out_of_time():
-            n = min(SOBOL_BATCH, share - self.state["sobol_drawn"], self._left())
+        # counts evaluations (points the prefilter lets through), with a cap on points drawn
+        while (self.state["sobol_evaluated"] < share and self._left() > 0 and not self._out_of_time()
+               and self.state["sobol_drawn"] < MAX_DRAW_FACTOR * share):
+            n = min(SOBOL_BATCH, self._left())
             with warnings.catch_warnings():   # a last, shorter batch is fine for screening
                 warnings.simplefilter("ignore", UserWarning)
                 u = sob.random(n)
             self.state["sobol_drawn"] += n
+            before = self.state["evaluated"]
             self.evaluate_u(u, "sobol")
+            self.state["sobol_evaluated"] += self.state["evaluated"] - before
 
     def _phase_optuna(self) -> None:
         import optuna

@@ -39,12 +39,15 @@ class Space:
         return self.family.dim
 
     def decode(self, u: np.ndarray) -> np.ndarray:
-        """Map (N, d) unit-cube points to (N, d) admissible parameter vectors."""
+        """Map (N, d) unit-cube points to (N, d) admissible parameter vectors.
+
+        Corners are decoded first; the gain coordinate then spans only the gains
+        that meet the low-frequency gain bound for those corners, so the bound
+        shapes the space instead of rejecting samples.
+        """
         u = np.clip(np.atleast_2d(np.asarray(u, float)), 0.0, 1.0)
-        g0, g1 = self.log_gain
         f0, f1 = self.log_freq
-        out = np.empty_like(u)
-        out[:, 0] = g0 + (g1 - g0) * u[:, 0]
+        out = np.zeros_like(u)
         fam = self.family
         if fam.kind == "lead-lag":
             for role, zc, pc in fam.pairs:
@@ -52,23 +55,39 @@ class Space:
                 c = (f0 + r / 2) + (f1 - f0 - r) * u[:, zc]    # centre, kept inside the range
                 lo, hi = c - r / 2, c + r / 2
                 out[:, zc], out[:, pc] = (lo, hi) if role == "lead" else (hi, lo)
-            return out
-        # pid / pi: integral corner ki/kp inside the frequency range
-        out[:, 1] = out[:, 0] + f0 + (f1 - f0) * u[:, 1]
-        if fam.kind == "pid":
-            td = -(f0 + (f1 - f0) * u[:, 2])                   # kd/kp = 1/w_d
-            out[:, 2] = out[:, 0] + td
-            n0, n1 = np.log10(PID_FILTER_RANGE)
-            out[:, 3] = td - (n0 + (n1 - n0) * u[:, 3])        # tf = (kd/kp)/N
+        else:
+            out[:, 1] = f0 + (f1 - f0) * u[:, 1]               # log10(ki/kp) for now
+            if fam.kind == "pid":
+                out[:, 2] = -(f0 + (f1 - f0) * u[:, 2])        # log10(kd/kp) = -log10(w_d)
+                n0, n1 = np.log10(PID_FILTER_RANGE)
+                out[:, 3] = out[:, 2] - (n0 + (n1 - n0) * u[:, 3])   # log10(tf) = log10(kd/kp / N)
+        glo, ghi = self._gain_span(out)
+        out[:, 0] = glo + (ghi - glo) * u[:, 0]
+        if fam.kind != "lead-lag":
+            out[:, 1:] += out[:, :1]                            # ratios to kp -> absolute gains
+            if fam.kind == "pid":
+                out[:, 3] -= out[:, 0]                          # tf carries no kp
         return out
+
+    def _gain_span(self, p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Per-row range of the gain coordinate given decoded corners (ratios to kp for pid/pi)."""
+        g0, g1 = self.log_gain
+        lo = np.full(p.shape[0], g0)
+        hi = np.full(p.shape[0], g1)
+        if self.low_gain_min is not None:
+            if self.family.kind == "lead-lag":
+                shift = sum(p[:, zc] - p[:, pc] for _, zc, pc in self.family.pairs) if self.family.pairs else 0.0
+            else:
+                shift = p[:, 1]                                 # ki = kp * (ki/kp)
+            lo = np.maximum(lo, self.low_gain_min - shift)
+        return np.minimum(lo, hi), hi
 
     def encode(self, params: np.ndarray) -> np.ndarray:
         """Inverse of :meth:`decode` (clipped into the cube) for seeds given as parameters."""
         p = np.atleast_2d(np.asarray(params, float))
-        g0, g1 = self.log_gain
         f0, f1 = self.log_freq
-        u = np.empty_like(p)
-        u[:, 0] = (p[:, 0] - g0) / max(g1 - g0, 1e-12)
+        u = np.zeros_like(p)
+        rel = p.copy()
         fam = self.family
         if fam.kind == "lead-lag":
             for role, zc, pc in fam.pairs:
@@ -79,12 +98,16 @@ class Space:
                 span = f1 - f0 - r
                 u[:, zc] = np.where(span > 1e-12, (lo - f0) / np.where(span > 1e-12, span, 1.0), 0.5)
         else:
-            u[:, 1] = (p[:, 1] - p[:, 0] - f0) / (f1 - f0)
+            rel[:, 1] = p[:, 1] - p[:, 0]
+            u[:, 1] = (rel[:, 1] - f0) / (f1 - f0)
             if fam.kind == "pid":
-                td = p[:, 2] - p[:, 0]
-                u[:, 2] = (-td - f0) / (f1 - f0)
+                rel[:, 2] = p[:, 2] - p[:, 0]
+                rel[:, 3] = p[:, 3]
+                u[:, 2] = (-rel[:, 2] - f0) / (f1 - f0)
                 n0, n1 = np.log10(PID_FILTER_RANGE)
-                u[:, 3] = (td - p[:, 3] - n0) / (n1 - n0)
+                u[:, 3] = (rel[:, 2] - p[:, 3] - n0) / (n1 - n0)
+        glo, ghi = self._gain_span(rel)
+        u[:, 0] = (p[:, 0] - glo) / np.maximum(ghi - glo, 1e-12)
         return np.clip(u, 0.0, 1.0)
 
     def prefilter(self, params: np.ndarray) -> np.ndarray:

@@ -45,13 +45,32 @@ def char_poly(pn, pd, cn, cd):
 
 # ---------------------------------------------------------------- stability
 def mp_roots(p, dps: int = 60) -> np.ndarray:
-    """High-precision roots (mpmath.polyroots), rounded to complex128."""
+    """High-precision roots (mpmath.polyroots), rounded to complex128.
+
+    Multiple roots slow mpmath's iteration down to a stall; then the polynomial is split
+    exactly into square-free factors first (sympy.sqf_list on the exact rational value of
+    the float coefficients) and each factor's roots are repeated by their multiplicity.
+    """
     p = trimmed(p)
     if p.size <= 1:
         return np.zeros(0, complex)
-    with mpmath.workdps(dps):
-        r = mpmath.polyroots([mpmath.mpf(float(c)) for c in p], maxsteps=500, extraprec=3 * dps)
-    return np.array([complex(x) for x in r])
+    try:
+        with mpmath.workdps(dps):
+            r = mpmath.polyroots([mpmath.mpf(float(c)) for c in p], maxsteps=500, extraprec=3 * dps)
+        return np.array([complex(x) for x in r])
+    except mpmath.libmp.libhyper.NoConvergence:
+        import sympy as sp
+        s = sp.symbols("s")
+        poly = sp.Poly([sp.Rational(float(c)) for c in p], s)
+        out = []
+        for factor, mult in sp.sqf_list(poly)[1]:
+            coeffs = [sp.Rational(c) for c in factor.all_coeffs()]
+            if len(coeffs) > 1:
+                with mpmath.workdps(dps):
+                    fr = mpmath.polyroots([mpmath.mpf(int(c.p)) / int(c.q) for c in coeffs],
+                                          maxsteps=500, extraprec=3 * dps)
+                out += [complex(x) for x in fr] * mult
+        return np.array(out)
 
 
 def hurwitz_by_roots(p, dps: int = 60) -> bool:

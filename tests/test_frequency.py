@@ -94,8 +94,8 @@ def check_against_reference(row, ref, rel=REL, check_peak_freqs=True):
 # ------------------------------------------------------------------ random loops
 @st.composite
 def stable_loops(draw):
-    """Random rational loops: 1-4 plant poles (one possibly unstable, possibly a complex
-    pair), an optional LHP or RHP zero, a lead/lag controller with 0-2 stages and an
+    """Random rational loops: 1-3 real plant poles (one possibly unstable) and possibly a
+    complex pair, an optional LHP or RHP zero, a lead/lag controller with 0-2 stages and an
     optional integrator; kept only when closed-loop stable with a clear margin (numpy roots)."""
     lf = st.floats(-1.0, 1.0)
     poles = [-10 ** draw(lf) for _ in range(draw(st.integers(1, 3)))]

@@ -94,9 +94,10 @@ def test_columns_do_not_depend_on_the_batch():
     assert list(alone.columns) == list(mixed.columns)
 
 
-@pytest.mark.xfail(strict=True, reason="core._evaluate_controllers takes the well-posedness degree from the "
-                                       "batch-wide maximum (_degree over all rows): a lower-order controller "
-                                       "padded with leading zeros in a mixed batch is marked unstable")
+@pytest.mark.xfail(strict=True, reason="a controller padded with leading zeros in a batch of higher-order ones: "
+                                       "stability.well_posed takes the full degree from the whole batch (marks the "
+                                       "row unstable), and time.simulate strips only leading zeros common to every "
+                                       "row (NaN responses, settling time 0)")
 def test_mixed_order_batch_equals_one_at_a_time():
     # C1 = 1/(s+1) (padded to the width of C2), C2 = (s+1)^2/((s+1)(s+2)); plant 1/(s+1)
     G = TransferFunction([1.0], [1.0, 1.0])

@@ -46,6 +46,7 @@ from __future__ import annotations
 import argparse
 import datetime
 import glob
+import hashlib
 import os
 import platform
 import sys
@@ -471,12 +472,22 @@ def ratio(a: float, b: float) -> float:
     return np.inf if b <= 0 and a > 0 else (a / b if b > 0 else np.nan)
 
 
-def bench_spec(path: str, args, out: Out) -> Result:
+def load_specs(paths: list[str]) -> list[tuple[str, Spec, str]]:
+    """Every spec read once at the start (path, spec, short SHA-1 of the file), so that files
+    edited while the benchmark runs do not change what it measures."""
+    out = []
+    for p in paths:
+        with open(p, "rb") as f:
+            digest = hashlib.sha1(f.read()).hexdigest()[:10]
+        out.append((p, load_spec(p), digest))
+    return out
+
+
+def bench_spec(path: str, spec: Spec, digest: str, args, out: Out) -> Result:
     """Every method on one spec, then the reference runs, scoring and the table."""
-    spec = load_spec(path)
     space = make_space(spec)
     budget = args.delay_budget if spec.plant.delay else args.budget
-    out(f"\n## {spec.name}  ({os.path.relpath(path, ROOT)})\n")
+    out(f"\n## {spec.name}  ({os.path.relpath(path, ROOT)}, sha1 {digest})\n")
     out(describe(spec, space) + f"; budget {budget}; objectives {', '.join(spec.objectives)}")
     if space.infeasible:
         out("infeasible by construction: " + "; ".join(space.infeasible))
@@ -655,11 +666,11 @@ def main(argv=None) -> None:
     out(f"- budget {args.budget} (dead time: {args.delay_budget}); optuna cap {args.optuna_cap_seconds:g} s; "
         f"reference {args.reference_seconds:g} s per spec; seed {SEED} for every method")
     t0 = time.perf_counter()
-    paths = args.specs or spec_paths(args.quick)
+    specs = load_specs(args.specs or spec_paths(args.quick))
     results = []
     with threadpool_limits(limits=1):
-        for p in paths:
-            results.append(bench_spec(p, args, out))
+        for path, spec, digest in specs:
+            results.append(bench_spec(path, spec, digest, args, out))
         summary(out, results)
     out(f"\ntotal wall time {time.perf_counter() - t0:.0f} s")
     os.makedirs(os.path.dirname(args.out), exist_ok=True)

@@ -15,13 +15,10 @@ import numpy as np
 
 from . import CAUTION
 from .evaluate import EvalOptions, METRICS, evaluate_controllers
+from .evaluate.core import EXTRA_FREQUENCIES
 from .evaluate import stability
 from .lti import TransferFunction, format_poly
 from .requirements import REQUIREMENTS, requirement_value
-
-
-EXTRA_FREQUENCIES = ("phase_margin_rad_s", "gain_margin_rad_s", "gain_margin_low_rad_s",
-                     "sensitivity_peak_rad_s", "complementary_peak_rad_s")
 
 
 def jsonable(x: Any) -> Any:
@@ -66,7 +63,7 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     for m in METRICS:
         rec[m] = row[m]
     for m in EXTRA_FREQUENCIES:      # where margins and peaks occur, rad/s (for plots)
-        rec[m] = row.get(m, float("nan"))
+        rec[m] = row[m]
     rec["certified"] = certified
     rec["closed_loop_poles"] = sorted(cert["poles"], key=lambda z: (-z.real, z.imag))
     rec["pade_order"] = int(row["pade_order"])

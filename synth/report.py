@@ -85,6 +85,7 @@ METRIC_AXIS = {
     "disturbance_gain_peak": "peak |P S| [output per load units]",
     "control_gain_peak": "peak |C S| [actuator per output units]",
     "bandwidth_rad_s": "closed-loop bandwidth [rad/s]",
+    "controller_hf_gain": "controller high-frequency gain |C(inf)| [actuator per output units]",
 }
 
 

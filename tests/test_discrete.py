@@ -156,6 +156,11 @@ def test_zoh_matches_scipy_zoh(g, T):
     # reference: scipy.signal.cont2discrete(method='zoh')
     # keep e^{pT} representable and the poles distinguishable after sampling
     assume(np.max(np.abs(g.poles)) * T < 30 if g.poles.size else True)
+    # scipy's route (tf2ss, expm, ss2tf) loses digits to cancellation when every nonzero pole is
+    # far slower than the sample rate; there synth was checked against 50-digit mpmath instead
+    # (G = 1e-4/(s^2 + 0.02 s + 1e-4), T = 1 ms: b = [0, 4.99996666679e-11, 4.99993333379e-11])
+    nz = np.abs(g.poles[np.abs(g.poles) > 0])
+    assume(nz.size == 0 or np.max(nz) * T > 1e-3)
     b, a = zoh(g, T)
     assert a[0] == 1.0 and b.size == a.size
     rb, ra = scipy_tf(g, T, "zoh")
@@ -376,3 +381,23 @@ def test_loop_rejects_bad_controller_coefficients():
         discrete_loop(OGATA_G, [1.0, 0.5], [0.0, 1.0], 0.1)
     with pytest.raises(ValueError, match="finite"):
         discrete_loop(OGATA_G, [1.0, np.nan], [1.0, 0.5], 0.1)
+
+
+def test_zoh_of_a_slow_plant_against_high_precision():
+    # reference: 50-digit mpmath matrix exponential of the augmented matrix [[A T, B T], [0, 0]]
+    # (Van Loan 1978) and num(z) = det(zI - Phi + Gamma C) - det(zI - Phi); scipy loses digits here
+    import mpmath as mp
+    with mp.workdps(50):
+        T = mp.mpf("0.001")
+        M = mp.matrix([[-0.02 * T, -1e-4 * T, T], [T, 0, 0], [0, 0, 0]])
+        E = mp.expm(M)
+        phi, gam = E[0:2, 0:2], E[0:2, 2]
+        C = mp.matrix([[0, 1e-4]])
+
+        def num_at(z):
+            d = lambda X: X[0, 0] * X[1, 1] - X[0, 1] * X[1, 0]
+            return d(z * mp.eye(2) - phi + gam * C) - d(z * mp.eye(2) - phi)
+        v0, v1, v2 = num_at(0), num_at(1), num_at(2)
+        ref = [float(v1 - (v2 - 2 * v1 + v0) / 2 - v0), float(v0)]
+    b, a = zoh(TransferFunction([1e-4], [1.0, 0.02, 1e-4]), 1e-3)
+    np.testing.assert_allclose(b[1:], ref, rtol=1e-9)

@@ -407,8 +407,6 @@ def test_short_dead_time_loop_is_stable():
     assert 10 ** (row["gain_margin_db"] / 20) == pytest.approx(np.pi / (2 * 0.05), rel=1e-6)
 
 
-@pytest.mark.xfail(strict=True, reason="delay_metrics: peaks are searched on a grid from 1e-5*w0 only and "
-                                       "never at w -> 0, so a slow loop's low-frequency |T| and |CS| are missed")
 def test_delay_peaks_include_the_low_frequency_limit():
     # G = 0.4 e^{-0.3 s}/(s^2+17s+70), C = 0.9 + 0.012/s: type-1 loop, so |T(0)| = 1 and
     # |CS(0)| = 1/|G(0)| = 175 (final-value limits); the sup can only be larger.
@@ -421,9 +419,6 @@ def test_delay_peaks_include_the_low_frequency_limit():
     assert row["control_gain_peak"] == pytest.approx(175.0, rel=REL)
 
 
-@pytest.mark.xfail(strict=True, reason="delay_metrics._grid_peak refines only the best grid sample; with a "
-                                       "biproper delayed loop |S| has infinitely many near-equal peaks and a "
-                                       "high-frequency sample wins, so the true peak is missed (1.8e-4 low)")
 def test_biproper_delay_loop_sensitivity_peak():
     pn, pd, theta, cn, cd = [0.7775], [1.0], 1.968, [1.0223, 0.01567], [1.0, 0.0]
     row = synth_row(pn, pd, cn, cd, theta)
@@ -431,8 +426,6 @@ def test_biproper_delay_loop_sensitivity_peak():
     assert row["sensitivity_peak"] == pytest.approx(ref["Ms"], rel=REL)
 
 
-@pytest.mark.xfail(strict=True, reason="_nyquist_stable counts encirclements on Re s = -eps with eps = 1e-5*w0; "
-                                       "a stable closed-loop pole between -eps and 0 is counted as unstable")
 def test_slow_stable_delay_loop_not_rejected():
     # e^-s/(s+1) with PI 0.5 + 1e-5/s: slow closed-loop pole near -6.7e-6, all others well damped
     truth, _ = _pade12_verdict([1.0], [1.0, 1.0], 1.0, [0.5, 1e-5], [1.0, 0.0])

@@ -80,10 +80,6 @@ def test_batched_equals_one_at_a_time(fb):
     assert_frames_equal(whole, singles[list(whole.columns)])
 
 
-@pytest.mark.xfail(strict=True, reason="core._evaluate_controllers adds phase_margin_rad_s, gain_margin_rad_s, "
-                                       "gain_margin_low_rad_s, sensitivity_peak_rad_s and complementary_peak_rad_s "
-                                       "only when some row is stable (cols.setdefault), "
-                                       "so the table's columns depend on the batch")
 def test_columns_do_not_depend_on_the_batch():
     fam = FAMILIES[0]
     stable_row, unstable_row = [1.5, 0.0, 1.0], [0.0, 0.0, 1.0]
@@ -94,10 +90,6 @@ def test_columns_do_not_depend_on_the_batch():
     assert list(alone.columns) == list(mixed.columns)
 
 
-@pytest.mark.xfail(strict=True, reason="a controller padded with leading zeros in a batch of higher-order ones: "
-                                       "stability.well_posed takes the full degree from the whole batch (marks the "
-                                       "row unstable), and time.simulate strips only leading zeros common to every "
-                                       "row (NaN responses, settling time 0)")
 def test_mixed_order_batch_equals_one_at_a_time():
     # C1 = 1/(s+1) (padded to the width of C2), C2 = (s+1)^2/((s+1)(s+2)); plant 1/(s+1)
     G = TransferFunction([1.0], [1.0, 1.0])

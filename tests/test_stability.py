@@ -153,8 +153,6 @@ def test_precise_roots_of_a_double_root():
     assert np.min(np.abs(r + 2)) < 1e-15
 
 
-@pytest.mark.xfail(strict=True, reason="precise_roots: mpmath.polyroots(maxsteps=400) raises NoConvergence "
-                                       "for a root of multiplicity >= 3, so certificate() crashes")
 def test_precise_roots_of_a_triple_root():
     # (s+1)^3 = s^3 + 3 s^2 + 3 s + 1, exactly representable: all roots exactly -1
     r = precise_roots([1.0, 3.0, 3.0, 1.0])
@@ -189,8 +187,6 @@ def test_certified_column_matches_mpmath():
     np.testing.assert_array_equal(df["internally_stable"], truth)
 
 
-@pytest.mark.xfail(strict=True, reason="certify=True crashes the whole batch (mpmath NoConvergence in "
-                                       "stability.precise_roots) when a closed-loop pole is triple")
 def test_certify_a_triple_closed_loop_pole():
     # 1/(s(s^2+3s+3)) with unit gain: Delta = (s+1)^3 exactly; stable (poles all at -1)
     df = evaluate_controllers(TransferFunction([1.0], [1.0, 3.0, 3.0, 0.0]), [[1.0]], [[1.0]], {},

@@ -31,6 +31,8 @@ METRICS = [
     "control_gain_peak", "bandwidth_rad_s", "position_constant", "velocity_constant",
     "acceleration_constant", "ramp_error", "certified",
 ]
+EXTRA_FREQUENCIES = ("phase_margin_rad_s", "gain_margin_rad_s", "gain_margin_low_rad_s",
+                     "sensitivity_peak_rad_s", "complementary_peak_rad_s")   # where margins/peaks occur
 SCREEN_KEYS = ("min_damping", "min_decay_rate")
 FREQUENCY_METRICS = {"gain_margin_db", "phase_margin_deg", "delay_margin_s", "sensitivity_peak",
                      "complementary_peak", "control_gain_peak", "disturbance_gain_peak", "bandwidth_rad_s",
@@ -95,7 +97,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     hidden, hidden_txt = stability.hidden_mode_mask(plant.num, plant.den, cnum, cden)
     stable &= posed & ~hidden
 
-    cols: dict[str, np.ndarray] = {m: np.full(n, np.nan) for m in METRICS}
+    cols: dict[str, np.ndarray] = {m: np.full(n, np.nan) for m in METRICS + list(EXTRA_FREQUENCIES)}
     cols["min_damping"] = np.where(np.isnan(damping), np.nan, damping)
     cols["decay_rate"] = decay
 
@@ -106,7 +108,9 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     work = stable.copy()
     if plant.delay and work.any():
         w0 = _pole_scale(char[work])
-        fm = frequency.delay_metrics(plant.num, plant.den, cnum[work], cden[work], plant.delay, w0)
+        # Nyquist line just left of the slowest (Padé) closed-loop pole, so a slow stable pole counts as stable
+        eps = np.clip(0.01 * decay[work], 1e-12 * w0, 1e-5 * w0)
+        fm = frequency.delay_metrics(plant.num, plant.den, cnum[work], cden[work], plant.delay, w0, eps)
         ok = fm.pop("nyquist_stable")
         idx = np.flatnonzero(work)
         stable[idx[~ok]] = False

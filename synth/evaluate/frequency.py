@@ -217,11 +217,13 @@ def _gain_interval(lpts: np.ndarray, wpts: np.ndarray) -> dict[str, np.ndarray]:
 
 # -------------------------------------------------------------- dead time
 def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.ndarray,
-                  points: int = 2400) -> dict[str, np.ndarray]:
+                  eps: np.ndarray | None = None, points: int = 2400) -> dict[str, np.ndarray]:
     """The same metrics for L = Np Nc exp(-delay s)/(Dp Dc), plus the Nyquist verdict.
 
-    Grid: ``points`` logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate;
-    peaks by golden-section search and crossings by bisection on the exact response.
+    Grid: ``points`` logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate,
+    plus w = 0; the largest few local maxima of each peak function are refined by
+    golden-section search and every crossing by bisection, on the exact response.
+    ``eps`` sets the line Re s = -eps of the Nyquist count (default 1e-5 w0).
     """
     n = nc.shape[0]
     nl = batch_conv(nc, np_)
@@ -231,33 +233,31 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
     lo, hi = 1e-5 * w0, 1e4 * w0
     u = np.linspace(0.0, 1.0, points)
     grid = lo[:, None] * (hi / lo)[:, None] ** u[None, :]
+    every = np.arange(n)
 
-    def parts(w):
+    def loop(rows, w):
         jw = 1j * w
-        nn, dd = batch_polyval(nl, jw), batch_polyval(dl, jw)
-        e = np.exp(-delay * jw)
-        return nn * e, dd
+        return batch_polyval(nl[rows], jw) * np.exp(-delay * jw) / batch_polyval(dl[rows], jw)
 
-    def loop(w):
-        nn, dd = parts(w)
-        return nn / dd
+    def on_grid(fun):
+        return fun(np.repeat(every, points), grid.ravel()).reshape(n, points)
 
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        L = loop(grid)
         out = {}
-        # Nyquist count on the line Re s = -eps (imaginary-axis poles counted as open-loop unstable)
-        out["nyquist_stable"] = _nyquist_stable(nl, dl, delay, lo)
+        out["nyquist_stable"] = _nyquist_stable(nl, dl, delay, eps if eps is not None else lo, w0)
 
         # gain crossovers
-        g = np.log(np.abs(L))
-        wg = _bisect_crossings(lambda w: np.log(np.abs(loop(w))), grid, g)
-        lg = loop(wg)
+        def logmag(rows, w):
+            return np.log(np.abs(loop(rows, w)))
+        wg = _bisect_crossings(logmag, grid, on_grid(logmag))
+        lg = _pairs_eval(loop, wg)
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
         # phase crossovers (L real negative) and the ends of the frequency axis
-        im = L.imag
-        wp = _bisect_crossings(lambda w: loop(w).imag, grid, im)
-        lp = loop(wp)
+        def imag(rows, w):
+            return loop(rows, w).imag
+        wp = _bisect_crossings(imag, grid, on_grid(imag))
+        lp = _pairs_eval(loop, wp)
         lp = np.where(lp.real < 0, lp.real + 0j, np.nan)
         l0 = nl[:, -1] / dl[:, -1]
         dn, ln_ = _lead(nl)
@@ -269,103 +269,118 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan), wpts))
         out["nyquist_stable"] &= linf_mag < 1.0
 
-        # peaks
+        # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
         for key, num in (("sensitivity_peak", None), ("complementary_peak", "T"),
                          ("disturbance_gain_peak", npdc), ("control_gain_peak", ncdp)):
             f = _closed_loop_mag(nl, dl, delay, num)
             pk, wpk = _grid_peak(f, grid)
-            out[key] = pk
+            at0 = f(every, np.zeros(n))
+            at0 = np.where(np.isfinite(at0), at0, -np.inf)
+            out[key] = np.maximum(pk, at0)
             if key in ("sensitivity_peak", "complementary_peak"):
-                out[key + "_rad_s"] = wpk
+                out[key + "_rad_s"] = np.where(at0 > pk, 0.0, wpk)
 
         # bandwidth of T: first crossing of |T(0)|/sqrt(2)
         ft = _closed_loop_mag(nl, dl, delay, "T")
         t0 = np.abs(nl[:, -1] / (nl[:, -1] + dl[:, -1]))
         level = t0 / np.sqrt(2)
-        vals = ft(grid) - level[:, None]
-        wb = _bisect_crossings(lambda w: ft(w) - level[:, None], grid, vals, first_only=True)
+
+        def tdrop(rows, w):
+            return ft(rows, w) - level[rows]
+        wb = _bisect_crossings(tdrop, grid, on_grid(tdrop), first_only=True)
         out["bandwidth_rad_s"] = np.where(t0 > 0, wb[:, 0], np.nan)
     return out
 
 
+def _pairs_eval(fun, w: np.ndarray) -> np.ndarray:
+    """fun(rows, w) on an (N, M) NaN-padded frequency array (NaN stays NaN)."""
+    rows, cols = np.nonzero(~np.isnan(w))
+    out = np.full(w.shape, np.nan + 0j)
+    if rows.size:
+        out[rows, cols] = fun(rows, w[rows, cols])
+    return out
+
+
 def _closed_loop_mag(nl, dl, delay, which):
-    """|S| (which None), |T| (which "T") or |X/(D + N e^{-sT})| for a numerator X,
-    as a function of an (N, K) frequency array (|e^{-jwT}| = 1 in any numerator)."""
-    def f(w):
+    """|S| (which None), |T| (which "T") or |X/(D + N e^{-sT})| for a numerator X, as a
+    function of (rows, w) 1-D arrays (|e^{-jwT}| = 1 in any numerator)."""
+    def f(rows, w):
         jw = 1j * w
-        nn = batch_polyval(nl, jw) * np.exp(-delay * jw)
-        dd = batch_polyval(dl, jw)
+        nn = batch_polyval(nl[rows], jw) * np.exp(-delay * jw)
+        dd = batch_polyval(dl[rows], jw)
         if which is None:
             top = dd
         elif isinstance(which, str):
             top = nn
         else:
-            top = batch_polyval(which, jw)
+            top = batch_polyval(which[rows], jw)
         return np.abs(top / (dd + nn))
     return f
 
 
-def _grid_peak(f, grid, iters: int = 60):
-    """Max of f over the grid, refined by golden-section search in log-frequency."""
-    v = f(grid)
+PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
+
+
+def _grid_peak(f, grid, iters: int = 50):
+    """Max of f(rows, w) over the grid: the largest few local maxima each refined by
+    golden-section search in log-frequency (several near-equal maxima occur with dead time)."""
+    n, K = grid.shape
+    v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
     v = np.where(np.isfinite(v), v, -np.inf)
-    k = np.argmax(v, axis=1)
-    rows = np.arange(grid.shape[0])
-    K = grid.shape[1]
+    locmax = np.zeros_like(v, dtype=bool)
+    locmax[:, 1:-1] = (v[:, 1:-1] >= v[:, :-2]) & (v[:, 1:-1] >= v[:, 2:])
+    locmax[:, 0] = v[:, 0] >= v[:, 1]
+    locmax[:, -1] = v[:, -1] >= v[:, -2]
+    score = np.where(locmax, v, -np.inf)
+    m = min(PEAK_CANDIDATES, K)
+    top = np.argpartition(-score, m - 1, axis=1)[:, :m]
+    rows = np.repeat(np.arange(n), m)
+    k = top.ravel()
+    ok = np.isfinite(score[rows, k])
     a = np.log(grid[rows, np.maximum(k - 1, 0)])
     b = np.log(grid[rows, np.minimum(k + 1, K - 1)])
     gr = (np.sqrt(5) - 1) / 2
     c, d = b - gr * (b - a), a + gr * (b - a)
-    fc, fd = f(np.exp(c)[:, None])[:, 0], f(np.exp(d)[:, None])[:, 0]
+    fc, fd = f(rows, np.exp(c)), f(rows, np.exp(d))
     for _ in range(iters):
         left = fc > fd
         b = np.where(left, d, b)
         a = np.where(left, a, c)
-        c2, d2 = b - gr * (b - a), a + gr * (b - a)
-        c, d = c2, d2
-        fc, fd = f(np.exp(c)[:, None])[:, 0], f(np.exp(d)[:, None])[:, 0]
+        c, d = b - gr * (b - a), a + gr * (b - a)
+        fc, fd = f(rows, np.exp(c)), f(rows, np.exp(d))
     xm = 0.5 * (a + b)
-    fm = f(np.exp(xm)[:, None])[:, 0]
-    best = np.maximum(fm, v[rows, k])
-    return best, np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k])
+    fm = np.where(ok, f(rows, np.exp(xm)), -np.inf)
+    fm = np.where(np.isfinite(fm), fm, -np.inf)
+    cand_v = np.maximum(fm, np.where(ok, v[rows, k], -np.inf)).reshape(n, m)
+    cand_w = np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k]).reshape(n, m)
+    j = np.argmax(cand_v, axis=1)
+    r = np.arange(n)
+    return cand_v[r, j], cand_w[r, j]
 
 
 def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False):
-    """Sign changes of ``vals`` along each grid row, refined by bisection on ``fun``.
+    """Sign changes of ``vals`` along each grid row, refined by bisection on fun(rows, w).
 
-    Returns an (N, M) NaN-padded array of crossing frequencies.
+    All (candidate, interval) pairs are refined together. Returns an (N, M) NaN-padded
+    array of crossing frequencies.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
+    if first_only:
+        ch &= np.cumsum(ch, axis=1) == 1
     counts = ch.sum(axis=1)
     m = max(int(counts.max()) if counts.size else 0, 1)
-    if first_only:
-        m = 1
     out = np.full((grid.shape[0], m), np.nan)
     rows, cols = np.nonzero(ch)
     if rows.size == 0:
         return out
     order = np.cumsum(ch, axis=1)[rows, cols] - 1
-    if first_only:
-        keep = order == 0
-        rows, cols, order = rows[keep], cols[keep], order[keep]
     a = np.log(grid[rows, cols])
     b = np.log(grid[rows, cols + 1])
     fa = vals[rows, cols]
-
-    def f_at(x):
-        # one call of ``fun`` per crossing index j, each on an (N, 1) frequency column
-        res = np.empty(x.size)
-        for j in range(int(order.max()) + 1):
-            sel = order == j
-            w = np.ones((grid.shape[0], 1))
-            w[rows[sel], 0] = np.exp(x[sel])
-            res[sel] = fun(w)[rows[sel], 0]
-        return res
-
     for _ in range(iters):
         mid = 0.5 * (a + b)
-        fm = f_at(mid)
+        fm = fun(rows, np.exp(mid))
         same = np.sign(fm) == np.sign(fa)
         a = np.where(same, mid, a)
         fa = np.where(same, fm, fa)
@@ -374,17 +389,20 @@ def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False
     return out
 
 
-def _nyquist_stable(nl, dl, delay, eps):
+def _nyquist_stable(nl, dl, delay, eps, w0=None, per_decade: int = 400):
     """Nyquist criterion on the line Re s = -eps: closed-loop RHP roots Z = P + N_cw.
 
     P counts roots of the unreduced Dp*Dc right of -eps; N_cw is minus the net
     change of arg(1 + L) along the line (twice the half-line, by symmetry) over 2 pi.
+    The frequency grid runs from 1e-3 eps to 1e4 w0 with ``per_decade`` points per decade.
     """
     n = nl.shape[0]
+    w0 = eps * 1e5 if w0 is None else w0
     droots = batch_roots(dl)
     P = np.sum(np.nan_to_num(droots.real, nan=-np.inf) > -eps[:, None], axis=1)
-    u = np.linspace(0.0, 1.0, 6000)
-    lo, hi = 1e-3 * eps, 1e9 * eps
+    lo, hi = 1e-3 * eps, 1e4 * w0
+    decades = float(np.max(np.log10(hi / lo)))
+    u = np.linspace(0.0, 1.0, int(per_decade * decades) + 1)
     w = np.concatenate([np.zeros((n, 1)), lo[:, None] * (hi / lo)[:, None] ** u[None, :]], axis=1)
     s = -eps[:, None] + 1j * w
     F = 1 + batch_polyval(nl, s) * np.exp(-delay * s) / batch_polyval(dl, s)

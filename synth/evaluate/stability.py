@@ -45,18 +45,18 @@ def closed_loop_poles(char: np.ndarray) -> np.ndarray:
 def well_posed(np_, dp, nc: np.ndarray, dc: np.ndarray) -> np.ndarray:
     """1 + L(inf) != 0: the leading terms of Dp*Dc and Np*Nc do not cancel.
 
-    Only a biproper loop can fail; the test compares the two leading coefficients
-    of the full degree with each other (relative 1e-12), not with the rest of the
-    polynomial, whose coefficients may span many decades.
+    Only a biproper loop can fail; for each row the two coefficients of that row's
+    full degree are compared with each other (relative 1e-12), not with the rest of
+    the polynomial, whose coefficients may span many decades.
     """
     a = batch_conv(dc, dp)
     b = batch_conv(nc, np_)
     m = max(a.shape[1], b.shape[1])
     a = np.pad(a, ((0, 0), (m - a.shape[1], 0)))
     b = np.pad(b, ((0, 0), (m - b.shape[1], 0)))
-    nz = (a != 0) | (b != 0)
-    first = np.argmax(np.any(nz, axis=0))     # full degree of the batch
-    la, lb = a[:, first], b[:, first]
+    first = np.argmax((a != 0) | (b != 0), axis=1)      # full degree of each row
+    rows = np.arange(a.shape[0])
+    la, lb = a[rows, first], b[rows, first]
     return np.abs(la + lb) > 1e-12 * (np.abs(la) + np.abs(lb))
 
 
@@ -155,13 +155,31 @@ def shift_exact(coeffs, alpha: float) -> list[Fraction]:
 
 
 def precise_roots(coeffs, digits: int = 40) -> np.ndarray:
-    """Roots from mpmath's polyroots at ``digits`` significant digits, rounded to complex128."""
+    """Roots from mpmath's polyroots at ``digits`` significant digits, rounded to complex128.
+
+    Repeated roots slow the Durand-Kerner iteration down; when it does not converge,
+    the repeated factors are split off exactly first (sympy square-free factorisation
+    over the rationals, each float being an exact rational) and each factor is solved.
+    """
     c = trim(coeffs)
     if c.size <= 1:
         return np.zeros(0, complex)
-    with mpmath.workdps(digits):
-        r = mpmath.polyroots([mpmath.mpf(float(x)) for x in c], maxsteps=400, extraprec=4 * digits)
-    return np.array([complex(x) for x in r])
+    try:
+        with mpmath.workdps(digits):
+            r = mpmath.polyroots([mpmath.mpf(float(x)) for x in c], maxsteps=400, extraprec=4 * digits)
+        return np.array([complex(x) for x in r])
+    except mpmath.libmp.NoConvergence:
+        import sympy
+        s = sympy.symbols("s")
+        poly = sympy.Poly([sympy.Rational(Fraction(float(x)).numerator, Fraction(float(x)).denominator)
+                           for x in c], s)
+        out = []
+        for factor, mult in sympy.sqf_list(poly)[1]:
+            coeffs_f = [float(x) for x in factor.all_coeffs()]
+            with mpmath.workdps(digits):
+                rr = mpmath.polyroots(coeffs_f, maxsteps=2000, extraprec=8 * digits) if len(coeffs_f) > 1 else []
+            out += [complex(x) for x in rr] * mult
+        return np.array(out)
 
 
 def certificate(char, decay_rate: float | None = None) -> dict:

@@ -384,11 +384,12 @@ def grouped_time_metrics(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarra
     t_end = HORIZON_DECAYS / (decay / w0)
     _, _, nseg = plan(poles / w0[:, None], t_end)
     length = FIRST_SEGMENT + SEGMENT_SAMPLES * nseg
-    bucket = np.ceil(np.log2(length)).astype(int)
+    degree = char.shape[1] - 1 - np.argmax(char != 0, axis=1)   # rows of a batch may differ in order
+    bucket = np.ceil(np.log2(length)).astype(int) * (char.shape[1] + 1) + degree
     out: dict[str, np.ndarray] = {}
     for b in np.unique(bucket):
         idx = np.flatnonzero(bucket == b)
-        per = max(1, chunk_samples // int(2 ** b))
+        per = max(1, chunk_samples // int(length[idx].max()))
         for s in range(0, idx.size, per):
             sl = idx[s:s + per]
             r = simulate(char[sl], [x[sl] for x in nums], w0[sl], decay[sl], poles[sl])

@@ -282,7 +282,8 @@ def export(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
     path = output or (run.folder / f"design-{cid}.csv")
     try:
         export_design(path, spec.plant, c, rec, spec.name, dict(spec.requirements), sample_time=sample_time,
-                      method=method, prewarp=prewarp)
+                      method=method, prewarp=prewarp, structure=run.manifest.get("family"),
+                      settling_band=spec.options.settling_band)
     except ExportError as e:
         fail(str(e))
     typer.echo(str(path))

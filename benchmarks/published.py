@@ -372,6 +372,17 @@ def simc_at_level(P: TransferFunction, kind: str, level: float) -> RuleResult:
 
 
 # ------------------------------------------------------------------ synth searches
+MS_EQUAL = 1e-6      # a rule's Ms within this relative distance of a level counts as equal to it
+
+
+def constraint_for(rule_ms: float, level: float) -> float:
+    """Ms constraint of a head-to-head with a rule meeting the level: the level itself when the
+    rule's Ms equals it (SIMC(Ms), within MS_EQUAL), else the rule's Ms rounded down to 1e-6."""
+    if abs(rule_ms - level) <= MS_EQUAL * level:
+        return level
+    return math.floor(min(rule_ms, level) * 1e6) / 1e6
+
+
 def _search(P: TransferFunction, kind: str, c: float, objectives, freq, st: Settings,
             warm_params: np.ndarray | None, name: str) -> tuple[pd.DataFrame, dict]:
     text = spec_text(P, kind, {"max_sensitivity_peak": c}, objectives, freq, name)
@@ -383,7 +394,7 @@ def _search(P: TransferFunction, kind: str, c: float, objectives, freq, st: Sett
     t0 = time.perf_counter()
     df = s.run()
     info = {"evaluated": int(s.state["evaluated"]), "seconds": time.perf_counter() - t0,
-            "time_stopped": bool(s._out_of_time()) and s.state["evaluated"] < st.budget}
+            "time_stopped": s.state["evaluated"] < st.budget and time.perf_counter() - t0 >= st.time_limit_s}
     return df, info
 
 
@@ -391,7 +402,12 @@ def best_rows(pool: pd.DataFrame, names, c: float, objectives, k: int) -> pd.Dat
     """The k lowest-IAE feasible rows of a pool under Ms <= c (ranked by synth.rank)."""
     if pool.empty:
         return pool
-    r = rank(pool, {"max_sensitivity_peak": c}, list(objectives), dedupe_cols=list(names))
+    # only rows that can be feasible go to the (quadratic) non-dominated sort; rank decides
+    pre = pool[pool["internally_stable"].astype(bool) & (pool["sensitivity_peak"].to_numpy(float) <= c)
+               & np.isfinite(pool["disturbance_iae"].to_numpy(float))]
+    if pre.empty:
+        return pre
+    r = rank(pre, {"max_sensitivity_peak": c}, list(objectives), dedupe_cols=list(names))
     f = r[r["feasible"] & np.isfinite(r["disturbance_iae"].to_numpy(float))]
     return f.sort_values("disturbance_iae", kind="stable").head(k)
 
@@ -476,9 +492,9 @@ def plant_job(args) -> dict:
             cons = set(LEVELS)
             for r in rules:
                 if r.kind == kind and r.gains is not None and r.stable:
-                    ms = r.metrics["sensitivity_peak"]
-                    if ms < max(LEVELS):
-                        cons.add(round(ms, 6) if round(ms, 6) <= ms else ms)
+                    for level in LEVELS:
+                        if r.metrics["sensitivity_peak"] <= level * (1 + MS_EQUAL):
+                            cons.add(constraint_for(r.metrics["sensitivity_peak"], level))
             cons = sorted(cons, reverse=True)
             b = BUDGETS[mode][kind]
             res["synth"][kind] = synth_family(P, kind, cons, OBJ_BRIEF, b, freq, plant.pid)
@@ -534,18 +550,13 @@ def head_to_heads(res: dict) -> list[dict]:
                 continue
             if r.gains is None:
                 continue
-            flag = ""
+            flag, c = "", level
             if not r.stable:
                 flag = "unstable"
-                c = level
+            elif r.metrics["sensitivity_peak"] > level * (1 + MS_EQUAL):
+                flag = ">lvl"
             else:
-                ms = r.metrics["sensitivity_peak"]
-                c = min(round(ms, 6) if round(ms, 6) <= ms else ms, level) if ms < max(LEVELS) else level
-                if ms > level + 1e-9:
-                    flag = ">lvl"
-                    c = level
-                elif ms < level:
-                    c = round(ms, 6) if round(ms, 6) <= ms else ms
+                c = constraint_for(r.metrics["sensitivity_peak"], level)
             row = {"plant": res["plant"].pid, "family": res["plant"].family, "level": level, "rule": r.name,
                    "kind": r.kind, "flag": flag, "c": c,
                    "rule_iae": r.metrics.get("disturbance_iae", math.inf) if r.stable else math.inf,
@@ -798,10 +809,10 @@ def plot(results: list[dict], path: str) -> None:
     colors = {"pi": "tab:blue", "pid": "tab:red"}
     for ax, res in zip(axes.flat, results):
         for kind in ("pi", "pid"):
-            env = res["diag"][kind]["envelope"]
-            if len(env):
-                ax.step(env[:, 0], env[:, 1], where="post", color=colors[kind], lw=1.2,
-                        label=f"synth {kind.upper()}")
+            for src, ls in (("synth", "-"), ("diag", "--")):
+                env = res[src][kind]["envelope"]
+                if len(env):
+                    ax.step(env[:, 0], env[:, 1], where="post", color=colors[kind], lw=1.0, ls=ls)
             for c, d in res["synth"][kind]["designs"].items():
                 ax.plot(d["sensitivity_peak"], d["disturbance_iae"], "x", color=colors[kind], ms=4)
             for r in res["rules"]:
@@ -816,11 +827,13 @@ def plot(results: list[dict], path: str) -> None:
         ax.tick_params(labelsize=6)
     for ax in list(axes.flat)[n:]:
         ax.axis("off")
-    handles = [plt.Line2D([], [], color=colors[k], label=f"synth {k.upper()} (envelope, IAE-only search)")
-               for k in colors]
+    handles = [plt.Line2D([], [], color=colors[k], ls=ls, label=f"synth {k.upper()}, {what}")
+               for k in colors for ls, what in (("-", "as briefed"), ("--", "IAE-only diagnostic"))]
     handles += [plt.Line2D([], [], color="k", marker="x", ls="", label="synth design as briefed")]
     handles += [plt.Line2D([], [], color="k", marker=m, mfc="none", ls="", label=nm) for nm, m in markers.items()]
-    fig.legend(handles=handles, loc="lower center", ncol=4, fontsize=8)
+    fig.legend(handles=handles, loc="lower center", ncol=5, fontsize=8,
+               title="curves: lower envelope of IAE over Ms of every candidate evaluated on the exact plant; "
+                     "blue PI, red PID", title_fontsize=8)
     fig.supxlabel("Ms", fontsize=8)
     fig.supylabel("IAE, unit load step at the plant input", fontsize=8)
     fig.tight_layout(rect=(0, 0.03, 1, 1))

@@ -99,6 +99,22 @@ def _open(run_dir: Path):
         fail(str(e))
 
 
+def _candidate(run_dir: Path, cid: int):
+    """(run, ranked row, controller, exact check record) of one stored candidate."""
+    from .archive import ArchiveError
+    from .runs import controller_of, find_row, ranked
+    run = _open(run_dir)
+    try:
+        row = find_row(run, ranked(run), cid)
+    except ArchiveError as e:
+        fail(str(e))
+    c = controller_of(run, row)
+    spec = run.spec
+    rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
+                           spec.options.pade_order)
+    return run, row, c, rec
+
+
 def _finish_design(run, as_json: bool, top: int, report: bool) -> None:
     from .runs import ranked
     from .tables import design_summary, json_rows
@@ -178,17 +194,7 @@ def show(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
          cid: int = typer.Argument(..., metavar="ID", help="candidate id from the table"),
          as_json: bool = typer.Option(False, "--json", help="one JSON object")) -> None:
     """One candidate in full: controller, closed-loop poles, every metric and requirement, certificate."""
-    from .archive import ArchiveError
-    from .runs import controller_of, find_row, ranked
-    run = _open(run_dir)
-    try:
-        row = find_row(run, ranked(run), cid)
-    except ArchiveError as e:
-        fail(str(e))
-    c = controller_of(run, row)
-    spec = run.spec
-    rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
+    run, row, c, rec = _candidate(run_dir, cid)
     rec.update(id=int(cid), rank=int(row["rank"]), structure=run.manifest.get("family", ""))
     if as_json:
         typer.echo(json.dumps(jsonable(rec), indent=2))
@@ -263,22 +269,13 @@ def export(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
            method: str = typer.Option("tustin", "--method", help="tustin | zoh"),
            prewarp: bool = typer.Option(True, "--prewarp/--no-prewarp", help="Tustin pre-warped at the crossover")) -> None:
     """CSV of one design: requirements, controller (continuous and discrete), closed-loop poles, caution."""
-    from .archive import ArchiveError
     from .export import ExportError, export_design
-    from .runs import controller_of, find_row, ranked
     if method not in ("tustin", "zoh"):
         fail(f"--method {method!r}: expected tustin or zoh")
     if sample_time is not None and sample_time <= 0:
         fail("--sample-time: expected a positive sample period in seconds")
-    run = _open(run_dir)
-    try:
-        row = find_row(run, ranked(run), cid)
-    except ArchiveError as e:
-        fail(str(e))
-    c = controller_of(run, row)
+    run, row, c, rec = _candidate(run_dir, cid)
     spec = run.spec
-    rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
     path = output or (run.folder / f"design-{cid}.csv")
     try:
         export_design(path, spec.plant, c, rec, spec.name, dict(spec.requirements), sample_time=sample_time,

@@ -64,9 +64,9 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
     if resume is not None:
         run = open_run(resume)
         spec, store, manifest = run.spec, run.store, run.manifest
+        if "settings" not in manifest:
+            raise ArchiveError(f"{resume}: manifest.json has no search settings; expected a run written by synth")
         settings = Settings(**manifest["settings"])
-        if settings is None:
-            raise ArchiveError(f"{resume}: manifest.json has no search settings")
         previous = store.load()
         state = store.load_json("state.json")
     else:

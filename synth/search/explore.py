@@ -25,7 +25,7 @@ from scipy.stats import qmc
 from ..evaluate import EvalOptions, evaluate
 from ..lti import TransferFunction
 from ..rank import violation
-from ..requirements import REQUIREMENTS
+from ..requirements import REQUIREMENTS, requirement_value
 from .refine import compass_polish
 from .seeds import seeds as classical_seeds
 from .space import Space, build_space
@@ -284,7 +284,6 @@ def requirement_conflicts(df: pd.DataFrame, requirements: dict) -> list[dict]:
         n = int(others.sum())
         best = None
         if n:
-            from ..requirements import requirement_value
             vals = requirement_value(req, df[others])
             vals = vals[np.isfinite(vals)] if np.any(np.isfinite(vals)) else vals
             best = float(vals.max() if req.sense == "min" else vals.min()) if len(vals) else None

@@ -43,6 +43,18 @@ def _phase(plant: TransferFunction, s: np.ndarray) -> np.ndarray:
     return ph
 
 
+def _unit_loop_gain(plant: TransferFunction, fam, p: np.ndarray, s: complex) -> np.ndarray | None:
+    """Set the gain parameter so that |L(s)| = 1 at the point s (magnitude condition)."""
+    p = p.copy()
+    p[0] = 0.0
+    num, den = fam.controllers(p[None, :])
+    mag = abs(np.polyval(num[0], s) / np.polyval(den[0], s) * plant(s))
+    if not np.isfinite(mag) or mag == 0:
+        return None
+    p[0] = -np.log10(mag)
+    return p
+
+
 def _target_damping(req: dict) -> float:
     z = req.get("min_damping", 0.0)
     os_ = req.get("max_overshoot_pct")
@@ -82,13 +94,9 @@ def frequency_seeds(plant: TransferFunction, space: Space, req: dict, n_w: int =
             for zc, pc in lag_cols:
                 z = wc / LAG_SPACING
                 p[zc], p[pc] = np.log10(z), np.log10(z / LAG_RATIO)
-            p[0] = 0.0
-            num, den = fam.controllers(p[None, :])
-            mag = abs(np.polyval(num[0], 1j * wc) / np.polyval(den[0], 1j * wc) * plant(1j * wc))
-            if not np.isfinite(mag) or mag == 0:
-                continue
-            p[0] = -np.log10(mag)
-            out.append(p)
+            p = _unit_loop_gain(plant, fam, p, 1j * wc)
+            if p is not None:
+                out.append(p)
     return np.array(out).reshape(-1, fam.dim)
 
 
@@ -138,13 +146,9 @@ def root_locus_seeds(plant: TransferFunction, space: Space, req: dict, n_w: int 
                 ok = False
             if not ok:
                 continue
-            p[0] = 0.0
-            num, den = fam.controllers(p[None, :])
-            mag = abs(np.polyval(num[0], sd) / np.polyval(den[0], sd) * plant(sd))
-            if not np.isfinite(mag) or mag == 0:
-                continue
-            p[0] = -np.log10(mag)
-            out.append(p)
+            p = _unit_loop_gain(plant, fam, p, sd)
+            if p is not None:
+                out.append(p)
     return np.array(out).reshape(-1, fam.dim)
 
 

@@ -22,7 +22,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from _oracles import closed_loop, scipy_step  # noqa: E402
 
 from synth.evaluate import EvalOptions, evaluate_controllers  # noqa: E402
-from synth.evaluate.time import integral, simulate  # noqa: E402
+from synth.evaluate.time import exact_integral, integral, simulate  # noqa: E402
 from synth.lti import TransferFunction  # noqa: E402
 
 RESPONSES = ("T", "PS", "CS")
@@ -205,7 +205,7 @@ def test_integrated_error_of_pi_loop_is_one_over_ki(pn, pd, kp, ki):
     # (Astrom & Hagglund, *Advanced PID Control*, ISA 2006; value from memory -- it is the
     # final-value theorem applied to P/(s(1+PC)))
     r, _ = synth_responses(pn, pd, [kp, ki], [1.0, 0.0])
-    ie = integral(r.t, r.y[:, :, 1], r.dy[:, :, 1])[0]
+    ie = exact_integral(r, 1)[0]
     assert ie == pytest.approx(1.0 / ki, rel=1e-5)
 
 

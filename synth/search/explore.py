@@ -183,7 +183,7 @@ class Search:
         # counts evaluations (points the prefilter lets through), with a cap on points drawn
         while (self.state["sobol_evaluated"] < share and self._left() > 0 and not self._out_of_time()
                and self.state["sobol_drawn"] < MAX_DRAW_FACTOR * share):
-            n = min(SOBOL_BATCH, self._left())
+            n = min(SOBOL_BATCH, share - self.state["sobol_evaluated"], self._left())
             with warnings.catch_warnings():   # a last, shorter batch is fine for screening
                 warnings.simplefilter("ignore", UserWarning)
                 u = sob.random(n)

@@ -432,6 +432,10 @@ def fmt(x, spec: str = ".2f", none: str = "-") -> str:
     return none if x is None else format(x, spec)
 
 
+def secs(x: float | None) -> str:
+    return "never" if x is None else f"{x:.2f} s"
+
+
 def table(out: Out, rows: list[Row]) -> None:
     out("| method | used | wall s | first feas s | feasible | HV | HV / best | t90 s | note |")
     out("| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |")
@@ -558,17 +562,17 @@ def summary(out: Out, results: list[Result]) -> None:
         q, s = r.rows[key15], r.rows["synth"]
         ok = q.t90_s is not None and q.t90_s <= TARGET_LEADLAG_SECONDS
         out(f"- two-stage lead-lag on a third-order plant ({r.name}): {TARGET_LEADLAG_FRACTION:.0%} of the best-known "
-            f"HV within {TARGET_LEADLAG_SECONDS:g} s: {'MET' if ok else 'MISSED'} ({TARGET_LEADLAG_SECONDS:g} s run "
-            f"reached {q.fraction:.3f}, t90 {fmt(q.t90_s, '.2f', 'never')} s; budget-{r.budget} run reached "
-            f"{s.fraction:.3f} in {s.wall_s:.2f} s, t90 {fmt(s.t90_s, '.2f', 'never')} s)")
+            f"HV within {TARGET_LEADLAG_SECONDS:g} s: {'MET' if ok else 'MISSED'} ({TARGET_LEADLAG_SECONDS:g}-s run "
+            f"reached {q.fraction:.3f}, t90 {secs(q.t90_s)}; budget-{r.budget} run reached "
+            f"{s.fraction:.3f} in {s.wall_s:.2f} s, t90 {secs(s.t90_s)})")
     if not two:
         out("- two-stage lead-lag on a third-order plant: no such spec in this run")
     for label, attr in (("NSGA-II", "ratio_nsga"), ("TPE", "ratio_tpe")):
         vals = [getattr(r, attr) for r in feasible]
         met = [v for v in vals if v >= TARGET_WALL_RATIO]
         out(f"- equal wall time, at least {TARGET_WALL_RATIO}x the HV of {label} alone: "
-            f"{'MET' if len(met) == len(vals) else 'MISSED'} on {len(met)} of {len(vals)} specs "
-            f"(ratios {', '.join(f'{v:.2f}' for v in vals)})")
+            f"{'MET' if len(met) == len(vals) else 'MISSED'} (met on {len(met)} of {len(vals)} feasible specs; "
+            f"ratios {', '.join(f'{r.name} {getattr(r, attr):.2f}' for r in feasible)})")
     observations(out, results)
 
 
@@ -634,6 +638,19 @@ def versions() -> str:
             f"synth {getattr(synth, '__version__', '?')}")
 
 
+def code_version() -> str:
+    """git commit of the work tree and whether synth/ has uncommitted changes (what was measured)."""
+    import subprocess
+    try:
+        head = subprocess.run(["git", "-C", ROOT, "rev-parse", "--short", "HEAD"], capture_output=True,
+                              text=True, timeout=10).stdout.strip()
+        dirty = subprocess.run(["git", "-C", ROOT, "status", "--porcelain", "--", "synth"], capture_output=True,
+                               text=True, timeout=10).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        return "unknown"
+    return f"{head or 'unknown'}{' + uncommitted changes in synth/' if dirty else ''}"
+
+
 def parse_args(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help=f"budget 3000, {QUICK_SPECS} specs, short reference")
@@ -645,13 +662,15 @@ def parse_args(argv=None):
     ap.add_argument("--optuna-cap-seconds", type=float, default=None,
                     help="wall-time cap of each optuna-alone run (default 60; quick 15)")
     ap.add_argument("--specs", nargs="*", default=None, help="spec files (default: specs/ and benchmarks/specs/)")
-    ap.add_argument("--out", default=os.path.join(ROOT, "benchmarks", "results", "synthesis.md"))
+    ap.add_argument("--out", default=None,
+                    help="results file (default benchmarks/results/synthesis.md; quick: synthesis-quick.md)")
     a = ap.parse_args(argv)
     q = a.quick
     a.budget = a.budget or (3000 if q else 20000)
     a.delay_budget = a.delay_budget or (300 if q else 1000)
     a.reference_seconds = a.reference_seconds if a.reference_seconds is not None else (15.0 if q else 120.0)
     a.optuna_cap_seconds = a.optuna_cap_seconds if a.optuna_cap_seconds is not None else (15.0 if q else 60.0)
+    a.out = a.out or os.path.join(ROOT, "benchmarks", "results", "synthesis-quick.md" if q else "synthesis.md")
     return a
 
 
@@ -661,7 +680,7 @@ def main(argv=None) -> None:
     out("# Synthesis benchmark: synth against random search, NSGA-II, TPE and the seeds\n")
     out(f"- date: {datetime.datetime.now().isoformat(timespec='seconds')}")
     out(f"- machine: {machine()}; BLAS pinned to 1 thread")
-    out(f"- versions: {versions()}")
+    out(f"- versions: {versions()}; code {code_version()}")
     out(f"- command: python benchmarks/synthesis.py {' '.join(sys.argv[1:] if argv is None else argv)}")
     out(f"- budget {args.budget} (dead time: {args.delay_budget}); optuna cap {args.optuna_cap_seconds:g} s; "
         f"reference {args.reference_seconds:g} s per spec; seed {SEED} for every method")

@@ -185,4 +185,7 @@ def test_screening_never_changes_the_verdict(fb, pm, ms, zeta):
     np.testing.assert_array_equal(fast["feasible"], full["feasible"])
     ok = full["feasible"].to_numpy(bool)
     for col in ("phase_margin_deg", "sensitivity_peak", "overshoot_pct", "settling_time_s", "min_damping"):
-        np.testing.assert_allclose(fast[col].to_numpy(float)[ok], full[col].to_numpy(float)[ok], rtol=1e-12)
+        # time responses are simulated in groups of similar grid length, so a different batch can
+        # change the last bits; an overshoot that is 0 in exact arithmetic may read 7e-14 %
+        np.testing.assert_allclose(fast[col].to_numpy(float)[ok], full[col].to_numpy(float)[ok],
+                                   rtol=1e-12, atol=1e-10)

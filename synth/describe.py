@@ -124,6 +124,17 @@ def fmt_complex(z: complex, digits: int = 5) -> str:
     return f"{z.real:.{digits}g} {'+' if z.imag >= 0 else '-'} j{abs(z.imag):.{digits}g}"
 
 
+def verdict_text(rec: dict) -> str:
+    """The stability verdict of a check record in plain words, naming any hidden mode."""
+    if rec["internally_stable"]:
+        verdict = "internally stable" + (" (certified)" if rec["certified"] else " (NOT certified)")
+    else:
+        verdict = "NOT internally stable"
+    if rec["hidden_modes"]:
+        verdict += f": hidden mode, {rec['hidden_modes']}"
+    return verdict
+
+
 def format_record(rec: dict, title: str = "") -> str:
     """Plain-text rendering of a check record, for a terminal 100 columns wide."""
     out = []
@@ -134,13 +145,7 @@ def format_record(rec: dict, title: str = "") -> str:
     out.append(f"            gain {fmt_num(c['gain'])}, zeros [{', '.join(fmt_complex(z) for z in c['zeros'])}], "
                f"poles [{', '.join(fmt_complex(p) for p in c['poles'])}]")
     out.append("")
-    if rec["internally_stable"]:
-        verdict = "internally stable" + (" (certified)" if rec["certified"] else " (NOT certified)")
-    else:
-        verdict = "NOT internally stable"
-    if rec["hidden_modes"]:
-        verdict += f": hidden mode, {rec['hidden_modes']}"
-    out.append(f"verdict     {verdict}")
+    out.append(f"verdict     {verdict_text(rec)}")
     met = [r["met"] for r in rec["requirements"].values()]
     if met:
         out.append(f"            {sum(met)} of {len(met)} requirements met"

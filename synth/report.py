@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 from . import CAUTION, __version__
-from .describe import check_controller, fmt_complex, fmt_num
+from .describe import check_controller, fmt_complex, fmt_num, verdict_text
 from .evaluate import step_responses
 from .evaluate.stability import hidden_mode_mask
 from .evaluate.time import HORIZON_DECAYS
@@ -1243,12 +1243,7 @@ def requirement_table_html(c: Candidate) -> str:
 def _candidate_section(c: Candidate) -> str:
     rec = c.record
     ctrl = rec["controller"]
-    if rec["internally_stable"]:
-        verdict = "internally stable" + (" (certified)" if rec["certified"] else " (NOT certified)")
-    else:
-        verdict = "NOT internally stable"
-    if rec["hidden_modes"]:
-        verdict += f"; hidden mode: {rec['hidden_modes']}"
+    verdict = verdict_text(rec)
     met = [r["met"] for r in rec["requirements"].values()]
     metline = (f"{sum(met)} of {len(met)} requirements met" if met else "no requirements")
     poles = rec["closed_loop_poles"]

@@ -56,6 +56,7 @@ from synth.evaluate import evaluate, step_responses  # noqa: E402
 from synth.evaluate import stability  # noqa: E402
 from synth.lti import TransferFunction  # noqa: E402
 from synth.structures import Family  # noqa: E402
+from _machine import cpu_model  # noqa: E402  (sibling module; scripts run as files)
 
 # ------------------------------------------------------------------ scenario
 PLANT_GAIN = 200.0
@@ -108,12 +109,7 @@ AGREEMENT_METRICS = {
 # ------------------------------------------------------------------ machine
 def machine_lines() -> list[str]:
     """nproc, CPU model, library versions, date and the thread pools in effect."""
-    cpu = "unknown"
-    try:
-        with open("/proc/cpuinfo") as fh:
-            cpu = next((ln.split(":", 1)[1].strip() for ln in fh if ln.startswith("model name")), cpu)
-    except OSError:
-        pass
+    cpu = cpu_model()
     pools = ", ".join(f"{p['internal_api']}={p['num_threads']}" for p in threadpool_info()) or "none found"
     return [
         f"date     {datetime.datetime.now().astimezone().isoformat(timespec='seconds')}",

@@ -92,6 +92,7 @@ from synth.lti import TransferFunction  # noqa: E402
 from synth.rank import rank  # noqa: E402
 from synth.search.explore import Search, Settings  # noqa: E402
 from synth.spec import parse_spec  # noqa: E402
+from _machine import cpu_model  # noqa: E402  (sibling module; scripts run as files)
 
 LEVELS = (1.4, 2.0)
 PADE = 6
@@ -590,15 +591,7 @@ def _gm(m: dict) -> str:
 
 
 def machine() -> str:
-    cpu = platform.processor() or ""
-    try:
-        with open("/proc/cpuinfo") as fh:
-            for line in fh:
-                if line.startswith("model name"):
-                    cpu = line.split(":", 1)[1].strip()
-                    break
-    except OSError:
-        pass
+    cpu = cpu_model("")
     return f"nproc {os.cpu_count()}, {cpu}, {platform.system()} {platform.release()}"
 
 

@@ -68,6 +68,7 @@ from synth.search.explore import Search, Settings  # noqa: E402
 from synth.search.seeds import seeds as classical_seeds  # noqa: E402
 from synth.search.space import Space, build_space  # noqa: E402
 from synth.spec import Spec, load_spec  # noqa: E402
+from _machine import cpu_model  # noqa: E402  (sibling module; scripts run as files)
 
 SEED = 0
 RANDOM_BATCH = 2048              # synth's Sobol batch
@@ -616,15 +617,7 @@ QUICK_PICK = ("valve_positioner.toml", "balancing_cart.toml", "rhp_zero_turbine.
 
 
 def machine() -> str:
-    cpu = "unknown"
-    try:
-        with open("/proc/cpuinfo") as f:
-            for line in f:
-                if line.startswith("model name"):
-                    cpu = line.split(":", 1)[1].strip()
-                    break
-    except OSError:
-        pass
+    cpu = cpu_model()
     return f"nproc {os.cpu_count()}, CPU {cpu}, {platform.system()} {platform.release()}"
 
 

@@ -22,7 +22,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from _oracles import closed_loop, scipy_step  # noqa: E402
 
 from synth.evaluate import EvalOptions, evaluate_controllers  # noqa: E402
-from synth.evaluate.time import exact_integral, integral, simulate  # noqa: E402
+from synth.evaluate.time import exact_integral, simulate  # noqa: E402
 from synth.lti import TransferFunction  # noqa: E402
 
 RESPONSES = ("T", "PS", "CS")

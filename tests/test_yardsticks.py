@@ -205,7 +205,7 @@ def test_integrated_error_of_a_pi_loop_is_one_over_ki(plant, g):
     # cancel the unit load: ki * integral(y) = 1). Signed integral of synth's own sampled response.
     num, den = Y.pid_polynomials(g)
     resp = step_responses(plant, num[None], den[None], pade_order=12)
-    ie = synth_time.integral(resp.t, resp.y[:, :, 1], resp.dy[:, :, 1])[0]
+    ie = synth_time.exact_integral(resp, 1)[0]
     assert ie == pytest.approx(1.0 / g.ki, rel=1e-4)
     iae = loop_row(plant, g, pade_order=12)["disturbance_iae"]
     assert iae >= ie * (1 - 1e-6)          # IAE = IE only without a sign change of y

@@ -403,13 +403,6 @@ def abs_integral(r: Responses, out: int) -> np.ndarray:
     return np.where(same, np.abs(ints), simpson).sum(axis=1)
 
 
-def integral(t, y, dy):
-    """Signed integral of sampled y (Simpson with Hermite midpoints); see exact_integral."""
-    h = np.diff(t, axis=1)
-    ym = 0.5 * (y[:, :-1] + y[:, 1:]) + h * (dy[:, :-1] - dy[:, 1:]) / 8
-    return np.sum(h / 6 * (y[:, :-1] + 4 * ym + y[:, 1:]), axis=1)
-
-
 def time_metrics(r: Responses, band: float) -> dict[str, np.ndarray]:
     """Step-response metrics from sampled responses (see the DESIGN definitions)."""
     n = r.t.shape[0]

@@ -61,7 +61,7 @@ from _machine import cpu_model  # noqa: E402  (sibling module; scripts run as fi
 # ------------------------------------------------------------------ scenario
 PLANT_GAIN = 200.0
 PLANT_POLES = (2.0, -5.0, -20.0)
-PLANT = TransferFunction.from_zpk([], list(PLANT_POLES), PLANT_GAIN)
+PLANT = TransferFunction.from_roots([], list(PLANT_POLES), PLANT_GAIN)
 FAMILY = Family(stages=("lead", "lead"))
 GAIN_RANGE = (-1.0, 3.0)       # log10 K
 CORNER_RANGE = (-2.0, 3.0)     # log10 rad/s
@@ -153,7 +153,7 @@ def sample_stable(rng: np.random.Generator, n: int) -> np.ndarray:
     return np.concatenate(out)[:n]
 
 
-def zpk_of(row: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+def roots_of(row: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
     """Controller gain, zeros and poles of one parameter row (independent of synth)."""
     v = 10.0 ** np.asarray(row, float)
     return v[0], -v[[1, 3]], -v[[2, 4]]
@@ -175,7 +175,7 @@ def synth_full(params: np.ndarray) -> pd.DataFrame:
 # ------------------------------------------------------------------ (a) naive reference
 def naive_loop(row: np.ndarray):
     """Polynomials of one candidate: (Nc, Dc, characteristic, poles, stable, damping, decay)."""
-    k, z, p = zpk_of(row)
+    k, z, p = roots_of(row)
     nc, dc = k * np.poly(z), np.poly(p)
     dp, npl = np.poly(PLANT_POLES), np.array([PLANT_GAIN])
     char = np.polyadd(np.polymul(dp, dc), np.polymul(npl, nc))
@@ -305,7 +305,7 @@ class RefLoop:
 
 def reference_loop(row: np.ndarray) -> RefLoop:
     """Build Delta = Dp Dc + Np Nc and the three numerators in 40-digit arithmetic."""
-    k, z, p = zpk_of(row)
+    k, z, p = roots_of(row)
     with mpmath.workdps(MP_DIGITS):
         dp, npl = _mp_poly(PLANT_POLES), [mpmath.mpf(PLANT_GAIN)]
         nc, dc = _mp_poly(z, k), _mp_poly(p)
@@ -438,7 +438,7 @@ def reference_time(r: RefResponse) -> dict:
 
 def _loop_response(row: np.ndarray):
     """L(jw) from the zero/pole product form (no polynomial expansion)."""
-    k, z, p = zpk_of(row)
+    k, z, p = roots_of(row)
     pp = np.array(PLANT_POLES)
 
     def loop(w):
@@ -669,7 +669,7 @@ def disagreements(d: pd.DataFrame, params: np.ndarray, df: pd.DataFrame, refs: l
         return "none: every metric within its target"
     out.append("reproduce:  from synth.evaluate import evaluate; from synth.lti import TransferFunction; "
                "from synth.structures import Family")
-    out.append("            evaluate(TransferFunction.from_zpk([], [2, -5, -20], 200.0), "
+    out.append("            evaluate(TransferFunction.from_roots([], [2, -5, -20], 200.0), "
                "Family(stages=('lead', 'lead')), params[None]).T")
     return "\n".join(out)
 
@@ -733,7 +733,7 @@ def run(args: argparse.Namespace) -> None:
     print(f"process CPU / wall time over the timed runs: {100 * cpu / wall:.0f} %{busy} (load now {load_average()})")
 
     print(f"\nagreement on {args.agree:,} stable candidates against the accurate reference "
-          f"(40-digit poles; lsim + brentq/Brent in time; dense zpk grid + brentq/Brent in frequency)", flush=True)
+          f"(40-digit poles; lsim + brentq/Brent in time; dense zero-pole grid + brentq/Brent in frequency)", flush=True)
     sub = stable[:args.agree]
     df = synth_full(sub)
     d, refs = agreement(sub, df, progress=not args.quick)

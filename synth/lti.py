@@ -1,7 +1,7 @@
 """Rational transfer functions with optional dead time.
 
 Polynomials are numpy arrays of coefficients in descending powers of s. Nothing
-here cancels common factors unless :meth:`TransferFunction.minreal` is called:
+here cancels common factors unless :meth:`TransferFunction.cancel_common_factors` is called:
 the evaluator needs the unreduced numerator and denominator to see hidden modes.
 Batched helpers act on 2-D arrays, one polynomial per row.
 """
@@ -163,7 +163,7 @@ class TransferFunction:
 
     # construction ---------------------------------------------------------
     @classmethod
-    def from_zpk(cls, zeros, poles, gain: float, delay: float = 0.0) -> "TransferFunction":
+    def from_roots(cls, zeros, poles, gain: float, delay: float = 0.0) -> "TransferFunction":
         """k * prod(s - z) / prod(s - p) * exp(-delay s)."""
         return cls(gain * poly_from_roots(zeros), poly_from_roots(poles), delay)
 
@@ -236,7 +236,7 @@ class TransferFunction:
         pn, pd = pade(self.delay, order)
         return TransferFunction(np.polymul(self.num, pn), np.polymul(self.den, pd))
 
-    def minreal(self, tol: float = 1e-8) -> "TransferFunction":
+    def cancel_common_factors(self, tol: float = 1e-8) -> "TransferFunction":
         """Cancel numerator/denominator roots closer than ``tol`` (relative). Only when asked."""
         z, p = list(self.zeros), list(self.poles)
         keep_z = []
@@ -247,7 +247,7 @@ class TransferFunction:
             else:
                 p.pop(j)
         k = self.gain
-        return TransferFunction.from_zpk(keep_z, p, k, self.delay)
+        return TransferFunction.from_roots(keep_z, p, k, self.delay)
 
     def __repr__(self) -> str:  # compact, for error messages and debugging
         d = f", delay={self.delay:g}" if self.delay else ""

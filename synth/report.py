@@ -1162,7 +1162,7 @@ def _root_factor(r: complex) -> str:
     return f"(s {'+' if -r.real >= 0 else '-'} {fmt_num(abs(r.real), 5)})"
 
 
-def zpk_text(tf: TransferFunction, name: str = "C") -> str:
+def roots_text(tf: TransferFunction, name: str = "C") -> str:
     """k (s - z1)... / ((s - p1)...) with conjugate pairs as quadratics, e.g. C(s) = 36.4 (s + 23.1) / (s + 45.9)."""
     def factors(roots) -> list[str]:
         out, done = [], np.zeros(len(roots), bool)
@@ -1255,7 +1255,7 @@ def _candidate_section(c: Candidate) -> str:
     pls = ", ".join(fmt_complex(p, 6) for p in ctrl["poles"]) or "none"
     return (f'<section class="cand" id="candidate-{c.cid}"><h2>{_swatch(c)}Candidate {_e(c.tag)} '
             f"({_e(c.role)}, rank {c.rank})</h2>"
-            f"<h3>Controller (zero/pole/gain)</h3><pre>{_e(zpk_text(c.controller))}</pre>"
+            f"<h3>Controller (zero/pole/gain)</h3><pre>{_e(roots_text(c.controller))}</pre>"
             f"<p>gain k = {_e(fmt_num(ctrl['gain'], 8))}; zeros [{_e(zeros)}] rad/s; poles [{_e(pls)}] rad/s</p>"
             f"<h3>Verdict</h3><p>{_e(verdict)}; {_e(metline)}.</p>"
             f"<h3>Requirements</h3>{requirement_table_html(c)}"
@@ -1295,7 +1295,7 @@ def html_page(data: ReportData, images: list[bytes]) -> str:
         cells = "".join(f'<td class="num">{_e(fmt_num(rec.get(o), 4))}</td>' for o in objs)
         rows.append(f'<tr><td style="white-space:nowrap">{_swatch(c)}{_e(c.tag)}</td><td>{_e(c.role)}</td><td class="num">{c.rank}</td>'
                     f"<td>{'yes' if rec['feasible'] else 'no'}</td><td>{'yes' if rec['certified'] else 'no'}</td>"
-                    f"{cells}<td>{_e(zpk_text(c.controller))}</td></tr>")
+                    f"{cells}<td>{_e(roots_text(c.controller))}</td></tr>")
     out.append("<h2>Candidates in this report</h2><table class=\"cands\"><tr><th>id</th><th>why shown</th>"
                f"<th>rank</th><th>feasible</th><th>certified</th>{head}<th>controller</th></tr>"
                + "".join(rows) + "</table>")
@@ -1402,5 +1402,5 @@ def build_report(run: Run, ids: Sequence[int] | None = None, out: Path | None = 
 
 
 __all__ = ["ReportError", "build_report", "report_data", "choose_front", "render_figure",
-           "html_page", "write_outputs", "zpk_text", "FigureData", "Panel", "Curve", "Bound", "Mark", "Points",
+           "html_page", "write_outputs", "roots_text", "FigureData", "Panel", "Curve", "Bound", "Mark", "Points",
            "Region", "Disc", "Candidate"]

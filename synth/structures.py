@@ -107,7 +107,7 @@ class Family:
             den = np.pad(den, ((0, 0), (0, 1)))
         return self.sign * 10.0 ** p[:, :1] * num, den
 
-    def zpk(self, params: np.ndarray) -> tuple[np.ndarray, list[np.ndarray], list[np.ndarray]]:
+    def gain_zeros_poles(self, params: np.ndarray) -> tuple[np.ndarray, list[np.ndarray], list[np.ndarray]]:
         """Gains (N,), zeros and poles (lists of 1-D complex arrays) of each controller."""
         p = np.atleast_2d(params)
         if self.kind != "lead-lag":
@@ -123,11 +123,11 @@ class Family:
         poles = [np.concatenate([-(10.0 ** row[pc]), [0.0] * self.integrator]).astype(complex) for row in p]
         return gains, zeros, poles
 
-    def params_from_zpk(self, gain: float, zeros, poles) -> np.ndarray:
+    def params_from_roots(self, gain: float, zeros, poles) -> np.ndarray:
         """Inverse map for the lead-lag family: gain K and stage corner frequencies z_i, p_i
         (positive, rad/s, in stage order; the integrator pole is implied) -> parameter vector."""
         if self.kind != "lead-lag":
-            raise ValueError("params_from_zpk applies to lead-lag families; use params_from_pid")
+            raise ValueError("params_from_roots applies to lead-lag families; use params_from_pid")
         if np.sign(gain) != self.sign:
             raise ValueError("gain sign does not match the family's sign")
         zeros, poles = np.asarray(zeros, float), np.asarray(poles, float)

@@ -27,7 +27,7 @@ SHORT = {"settling_time_s": "settling_s", "disturbance_peak": "load_peak", "cont
 
 def _zp(run: Run, rows: pd.DataFrame):
     fam = family_of(run)
-    gains, zeros, poles = fam.zpk(rows[fam.names].to_numpy(float))
+    gains, zeros, poles = fam.gain_zeros_poles(rows[fam.names].to_numpy(float))
     return gains, zeros, poles
 
 

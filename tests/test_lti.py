@@ -85,9 +85,9 @@ def test_poly_from_roots_matches_numpy_poly(roots):
 @HYP
 @given(root_sets(max_real=3, max_pairs=1), root_sets(max_real=3, max_pairs=2),
        st.floats(0.1, 50) | st.floats(-50, -0.1))
-def test_zpk_coefficient_round_trip(zeros, poles, gain):
-    # zpk -> coefficients (synth) -> zpk by numpy.roots: same zeros, poles and gain
-    g = TransferFunction.from_zpk(zeros, poles, gain)
+def test_roots_coefficient_round_trip(zeros, poles, gain):
+    # roots -> coefficients (synth) -> roots by numpy.roots: same zeros, poles and gain
+    g = TransferFunction.from_roots(zeros, poles, gain)
     np.testing.assert_allclose(g.num, gain * (np.real(np.poly(zeros)) if zeros.size else np.ones(1)),
                                rtol=1e-12, atol=1e-9)
     if zeros.size:
@@ -96,13 +96,13 @@ def test_zpk_coefficient_round_trip(zeros, poles, gain):
     if poles.size:
         assert_same_roots(g.poles, poles, 1e-6)
     assert g.gain == pytest.approx(gain, rel=1e-14)
-    # coefficients -> zpk -> coefficients
-    back = TransferFunction.from_zpk(g.zeros, g.poles, g.gain)
+    # coefficients -> roots -> coefficients
+    back = TransferFunction.from_roots(g.zeros, g.poles, g.gain)
     np.testing.assert_allclose(back.num, g.num, rtol=1e-8, atol=1e-8 * np.abs(g.num).max())
     np.testing.assert_allclose(back.den, g.den, rtol=1e-8, atol=1e-8 * np.abs(g.den).max())
 
 
-def test_zpk_of_constant_and_zero_numerator():
+def test_roots_of_constant_and_zero_numerator():
     g = TransferFunction([0.0, 0.0], [1.0, 2.0])
     assert g.zeros.size == 0 and g.gain == 0.0
     k = TransferFunction.constant(3.5)
@@ -311,10 +311,10 @@ def test_relative_degree_and_properness():
     assert TransferFunction([0.0, 0.0, 1.0], [0.0, 1.0, 1.0]).relative_degree == 1   # leading zeros trimmed
 
 
-def test_minreal_cancels_only_when_asked():
+def test_cancel_common_factors_cancels_only_when_asked():
     g = TransferFunction(np.poly([-1.0, -3.0]) * 2.0, np.poly([-1.0, -2.0, -5.0]))
     assert g.den.size == 4
-    r = g.minreal()
+    r = g.cancel_common_factors()
     np.testing.assert_allclose(r.num, [2.0, 6.0], rtol=1e-10)                # 2 (s+3)
     np.testing.assert_allclose(r.den, np.poly([-2.0, -5.0]), rtol=1e-10)    # (s+2)(s+5)
 

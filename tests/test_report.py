@@ -29,7 +29,7 @@ from synth.describe import check_controller
 from synth.evaluate import step_responses
 from synth.lti import TransferFunction
 from synth.report import (FIGURE_KEYS, METRIC_AXIS, Candidate, ReportError, cancelled_roots, choose_front,
-                          loop_response, pole_map_data, render_figure, report_data, write_outputs, zpk_text)
+                          loop_response, pole_map_data, render_figure, report_data, write_outputs, roots_text)
 from synth.runs import open_run, ranked, run_search, settings_from
 from synth.spec import parse_spec
 
@@ -132,7 +132,7 @@ def test_report_builds_parses_and_embeds_one_image_per_figure(built, data):
         for key, r in c.record["requirements"].items():
             assert key in cells
         assert c.record["certificate"]["text"] in text
-        assert zpk_text(c.controller) in text
+        assert roots_text(c.controller) in text
     assert sorted(p.name for p in png_dir.iterdir()) == sorted(f"{i}-{k}.png" for i, k in
                                                                  enumerate(FIGURE_KEYS, 1))
     assert not [p for p in html_path.parent.iterdir() if p.name.endswith(".tmp")]
@@ -266,8 +266,8 @@ def test_pole_map_region_and_roots(run, data):
 
 
 def test_hidden_mode_is_highlighted():
-    plant = TransferFunction.from_zpk([], [20.0, -20.0, -500.0], 40000.0)
-    ctrl = TransferFunction.from_zpk([20.0], [-100.0], 50.0)     # zero on the unstable plant pole
+    plant = TransferFunction.from_roots([], [20.0, -20.0, -500.0], 40000.0)
+    ctrl = TransferFunction.from_roots([20.0], [-100.0], 50.0)     # zero on the unstable plant pole
     rec = check_controller(plant, ctrl, {"min_damping": 0.3})
     assert not rec["internally_stable"] and "cancels unstable plant pole" in rec["hidden_modes"]
     assert cancelled_roots(plant, ctrl) == [pytest.approx(20.0)]
@@ -280,7 +280,7 @@ def test_hidden_mode_is_highlighted():
     assert np.min(np.abs(np.asarray(rec["closed_loop_poles"]) - 20.0)) < 1e-6
     fig = render_figure(fd)
     assert any("hidden mode" in t.get_text() for ax in fig.axes for t in ax.texts)
-    assert cancelled_roots(plant, TransferFunction.from_zpk([-5.0], [-100.0], 50.0)) == []
+    assert cancelled_roots(plant, TransferFunction.from_roots([-5.0], [-100.0], 50.0)) == []
 
 
 def test_tradeoff_view_every_pair_front_highlighted(run, data):

@@ -73,7 +73,7 @@ def test_example_plants_have_the_documented_coefficients():
 
 
 # -------------------------------------------------------------- plant forms
-def test_zpk_form_with_complex_pairs():
+def test_roots_form_with_complex_pairs():
     spec = parse_spec("[plant]\nzeros = [-3]\npoles = [[-1, 2], [-1, -2], -5]\ngain = 4\n")
     # reference: hand expansion 4 (s + 3) / ((s^2 + 2 s + 5)(s + 5)) = (4 s + 12) / (s^3 + 7 s^2 + 15 s + 25)
     np.testing.assert_allclose(spec.plant.num, [4, 12], rtol=1e-14)

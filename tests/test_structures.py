@@ -76,7 +76,7 @@ def test_leadlag_coefficients_match_hand_built_sympy_product(stages, integrator,
 def test_lead_example_by_hand():
     # Ogata's lead 41.7 (s + 4.41)/(s + 18.4) (Modern Control Engineering, 5th ed., ex. 7-26)
     fam = Family("lead-lag", ("lead",))
-    p = fam.params_from_zpk(41.7, [4.41], [18.4])
+    p = fam.params_from_roots(41.7, [4.41], [18.4])
     num, den = fam.controllers(p[None])
     np.testing.assert_allclose(num[0], [41.7, 41.7 * 4.41], rtol=1e-14)
     np.testing.assert_allclose(den[0], [1.0, 18.4], rtol=1e-14)
@@ -150,13 +150,13 @@ def test_admissible_masks():
     assert Family("pid").admissible(np.zeros((2, 4))).all()
 
 
-# ------------------------------------------------------------------ zpk and its inverse
+# ------------------------------------------------------------------ gain-zeros-poles and its inverse
 @HYP
 @given(st.lists(logf, min_size=7, max_size=7), st.booleans(), st.sampled_from([1.0, -1.0]))
-def test_params_from_zpk_inverts_zpk(params, integ, sign):
+def test_params_from_roots_inverts_gain_zeros_poles(params, integ, sign):
     fam = Family("lead-lag", ("lead", "lag", "lead"), integrator=integ, sign=sign)
     p = np.array(params)
-    gains, zeros, poles = fam.zpk(p[None])
+    gains, zeros, poles = fam.gain_zeros_poles(p[None])
     # the zeros and poles are those of the coefficient polynomials: numpy.poly of them gives
     # the monic coefficient rows back (well conditioned even for repeated corners)
     num, den = fam.controllers(p[None])
@@ -165,28 +165,28 @@ def test_params_from_zpk_inverts_zpk(params, integ, sign):
     assert gains[0] == pytest.approx(num[0, 0] / den[0, 0], rel=1e-13)
     # back to parameters: corner frequencies are the negated zeros / stage poles
     stage_poles = -poles[0].real[: len(fam.pairs)]
-    back = fam.params_from_zpk(gains[0], -zeros[0].real, stage_poles)
+    back = fam.params_from_roots(gains[0], -zeros[0].real, stage_poles)
     np.testing.assert_allclose(back, p, rtol=1e-12, atol=1e-12)
 
 
-def test_pid_zpk_matches_numpy_roots():
+def test_pid_roots_matches_numpy_roots():
     fam = Family("pid")
     p = np.log10([[2.0, 0.5, 0.3, 0.05]])
-    gains, zeros, poles = fam.zpk(p)
+    gains, zeros, poles = fam.gain_zeros_poles(p)
     num, den = fam.controllers(p)
     np.testing.assert_allclose(np.sort(zeros[0]), np.sort(np.roots(num[0])), rtol=1e-12)
     np.testing.assert_allclose(np.sort(poles[0].real), [-20.0, 0.0], atol=1e-12)   # 1/tf and the integrator
     assert gains[0] == pytest.approx((2.0 * 0.05 + 0.3) / 0.05, rel=1e-13)          # (kp tf + kd)/tf
 
 
-def test_params_from_zpk_errors():
+def test_params_from_roots_errors():
     fam = Family("lead-lag", ("lead",))
     with pytest.raises(ValueError):
-        fam.params_from_zpk(-1.0, [1.0], [2.0])        # sign mismatch
+        fam.params_from_roots(-1.0, [1.0], [2.0])        # sign mismatch
     with pytest.raises(ValueError):
-        fam.params_from_zpk(1.0, [1.0, 2.0], [2.0])    # wrong count
+        fam.params_from_roots(1.0, [1.0, 2.0], [2.0])    # wrong count
     with pytest.raises(ValueError):
-        Family("pid").params_from_zpk(1.0, [], [])
+        Family("pid").params_from_roots(1.0, [], [])
     with pytest.raises(ValueError):
         fam.params_from_pid(1.0, 1.0)
 

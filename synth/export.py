@@ -1,9 +1,11 @@
 """CSV export of one chosen design, continuous and discrete, and its reader.
 
-One file, long format: one quantity per row, readable with
-``pandas.read_csv(path, comment="#")``. The file opens with a few ``#`` comment lines
-(what the file is, the columns, the CAUTION text); the CAUTION text is also a row,
-so it survives any tool that drops comments.
+One plain RFC 4180 file (Shafranovich, "Common Format and MIME Type for CSV Files",
+IETF RFC 4180, 2005): the header row first, then one quantity per row, every row with
+the same ten fields, CRLF line ends, fields quoted only when they hold a comma, a
+quote, a ``#`` or surrounding spaces. ``pandas.read_csv(path)``, Python's
+``csv.reader`` and spreadsheets read it with their defaults. There are no comment
+lines: the CAUTION text of :mod:`synth` is the first data row.
 
 Columns
 -------
@@ -11,7 +13,7 @@ Columns
 ``name``     the quantity (a requirement key, a metric name, ``zero``, ``b``, ...)
 ``index``    integer position where one is needed: the power of s for continuous
              coefficients, the delay k of z^-k for discrete coefficients, the running
-             number of a zero, pole or closed-loop pole; empty otherwise
+             number of a zero, pole, stage or closed-loop pole; empty otherwise
 ``value``    the number (full float64 precision; ``inf``/``-inf`` for unbounded
              quantities, empty where undefined or for text rows); booleans as 1/0;
              for complex numbers the real part
@@ -25,7 +27,8 @@ Columns
 Sections
 --------
 ``caution``           the CAUTION text of :mod:`synth` (name ``caution``, in ``note``)
-``design``            ``spec_name`` and ``structure`` (text in ``note``), ``controller``
+``design``            ``export_format`` (value: the layout version, 2), ``spec_name`` and
+                      ``structure`` (text in ``note``), ``controller``
                       and ``plant`` (the transfer functions as text), ``certificate``
                       (value 1/0: exact Routh-Hurwitz verdict; the text in ``note``),
                       ``settling_band`` when given, ``synth_version``
@@ -50,6 +53,10 @@ Sections
                       ``phase_margin_deg``, ``crossover_rad_s``, ``wc_times_T``, ``pole``
                       rows (z-plane closed-loop poles) and ``warning`` rows (text)
 
+Every row is made by :func:`item`, the one row helper; a caller adds its own rows
+(e.g. for a set of plant models) by passing ``extra_items`` built with it to
+:func:`export_design`.
+
 The write is atomic: a temporary file in the destination folder, then ``os.replace``.
 Any failure raises :class:`ExportError` naming the path and leaves nothing behind.
 """
@@ -60,7 +67,7 @@ import csv
 import math
 import os
 import tempfile
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -72,6 +79,7 @@ from .requirements import REQUIREMENTS
 COLUMNS = ["section", "name", "index", "value", "imag", "limit", "slack", "met", "unit", "note"]
 SECTIONS = ["caution", "design", "plant", "requirement", "metric", "controller", "closed_loop_pole",
             "discrete", "discrete_check"]
+EXPORT_FORMAT = 2       # 1: '#' comment lines before the header; 2: plain RFC 4180, header first
 METHODS = ("tustin", "zoh")
 SLOW_SAMPLING = 0.3     # w_c T above which sampling counts as slow (common-practice rule of thumb)
 
@@ -118,8 +126,9 @@ def _field(s: str) -> str:
     return s
 
 
-def _row(section: str, name: str, index: int | None = None, value: Any = None, imag: Any = None,
+def item(section: str, name: str, index: int | None = None, value: Any = None, imag: Any = None,
          limit: Any = None, slack: Any = None, met: Any = None, unit: str = "", note: str = "") -> list[str]:
+    """One row of the export, its fields as text in :data:`COLUMNS` order (numbers exact, note on one line)."""
     return [section, name, "" if index is None else str(int(index)), _num(value), _num(imag), _num(limit),
             _num(slack), _num(met), unit, " ".join(str(note).split())]
 
@@ -128,7 +137,7 @@ def _poly_rows(section: str, name: str, p, unit: str = "") -> list[list[str]]:
     """Coefficient rows of a polynomial in s, index = power of s."""
     p = np.asarray(p, dtype=float)
     n = p.size - 1
-    return [_row(section, name, n - i, c, unit=unit) for i, c in enumerate(p)]
+    return [item(section, name, n - i, c, unit=unit) for i, c in enumerate(p)]
 
 
 def _structure_text(c: TransferFunction) -> str:
@@ -156,7 +165,7 @@ def _difference_equation(b: np.ndarray, a: np.ndarray) -> str:
 def export_design(path, plant: TransferFunction, controller: TransferFunction, record: Mapping,
                   spec_name: str, requirements: Mapping[str, float], sample_time: float | None = None,
                   method: str = "tustin", prewarp: bool = True, *, structure: str | None = None,
-                  settling_band: float | None = None) -> None:
+                  settling_band: float | None = None, extra_items: Sequence[list[str]] = ()) -> None:
     """Write one design to a CSV file (format in the module docstring); atomic.
 
     ``record`` is the dict of :func:`synth.describe.check_controller` for this plant,
@@ -165,16 +174,17 @@ def export_design(path, plant: TransferFunction, controller: TransferFunction, r
     ``record["crossover_rad_s"]`` when ``prewarp`` and that frequency is finite and
     below the Nyquist frequency; or ``"zoh"``) and the sampled loop is checked.
     ``structure`` (e.g. ``Family.describe()``) and ``settling_band`` are recorded when
-    given. Raises :class:`ExportError` naming the path on any problem.
+    given. ``extra_items`` (rows made by :func:`item`) are written after the
+    closed-loop poles. Raises :class:`ExportError` naming the path on any problem.
     """
     path = os.fspath(path)
     rows = _design_rows(path, plant, controller, record, spec_name, requirements, sample_time, method,
-                        prewarp, structure, settling_band)
-    _atomic_write(path, rows, spec_name)
+                        prewarp, structure, settling_band, extra_items)
+    _atomic_write(path, rows)
 
 
 def _design_rows(path, plant, controller, record, spec_name, requirements, sample_time, method, prewarp,
-                 structure, settling_band) -> list[list[str]]:
+                 structure, settling_band, extra_items=()) -> list[list[str]]:
     where = f"export to {path}"
     if not isinstance(plant, TransferFunction) or not isinstance(controller, TransferFunction):
         raise ExportError(f"{where}: plant and controller must be synth.lti.TransferFunction objects")
@@ -188,27 +198,29 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
         raise ExportError(f"{where}: the record was computed for a different controller "
                           f"({rec_c['numerator']} / {rec_c['denominator']}) than the one given ({controller!r})")
 
-    rows: list[list[str]] = [_row("caution", "caution", note=CAUTION)]
+    rows: list[list[str]] = [item("caution", "caution", note=CAUTION)]
 
     # design
     cert = record.get("certificate", {}) or {}
     rows += [
-        _row("design", "spec_name", note=spec_name),
-        _row("design", "structure", note=structure if structure else _structure_text(controller)),
-        _row("design", "controller", note="C(s) = " + _tf_text(controller)),
-        _row("design", "plant", note="P(s) = " + _tf_text(plant)),
+        item("design", "export_format", value=EXPORT_FORMAT,
+             note="plain RFC 4180 CSV, header row first; columns in the synth README"),
+        item("design", "spec_name", note=spec_name),
+        item("design", "structure", note=structure if structure else _structure_text(controller)),
+        item("design", "controller", note="C(s) = " + _tf_text(controller)),
+        item("design", "plant", note="P(s) = " + _tf_text(plant)),
     ]
     if cert:
-        rows.append(_row("design", "certificate", value=bool(cert.get("routh_hurwitz")), note=cert.get("text", "")))
+        rows.append(item("design", "certificate", value=bool(cert.get("routh_hurwitz")), note=cert.get("text", "")))
     if settling_band is not None:
-        rows.append(_row("design", "settling_band", value=settling_band,
+        rows.append(item("design", "settling_band", value=settling_band,
                          note="settling band as a fraction of the final value"))
-    rows.append(_row("design", "synth_version", note=__version__))
+    rows.append(item("design", "synth_version", note=__version__))
 
     # plant
     rows += _poly_rows("plant", "numerator", plant.num)
     rows += _poly_rows("plant", "denominator", plant.den)
-    rows.append(_row("plant", "delay_s", value=plant.delay, unit="s"))
+    rows.append(item("plant", "delay_s", value=plant.delay, unit="s"))
 
     # requirements
     rec_req = record["requirements"]
@@ -223,7 +235,7 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
             raise ExportError(f"{where}: requirement {key!r} has limit {limit!r} but the record was checked "
                               f"against {r['limit']!r}")
         req = REQUIREMENTS[key]
-        rows.append(_row("requirement", key, value=r["value"], limit=r["limit"], slack=r["slack"],
+        rows.append(item("requirement", key, value=r["value"], limit=r["limit"], slack=r["slack"],
                          met=bool(r["met"]), unit=req.unit, note=req.meaning))
 
     # metrics: every scalar of the record
@@ -231,21 +243,21 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
         if name in _NESTED or isinstance(v, (dict, list, tuple, np.ndarray)):
             continue
         if isinstance(v, (bool, np.bool_)):
-            rows.append(_row("metric", name, value=bool(v), note=_BOOL_NOTE))
+            rows.append(item("metric", name, value=bool(v), note=_BOOL_NOTE))
         elif isinstance(v, str):
-            rows.append(_row("metric", name, note=v))
+            rows.append(item("metric", name, note=v))
         elif v is None or isinstance(v, (int, float, np.integer, np.floating)):
-            rows.append(_row("metric", name, value=v, unit=metric_unit(name)))
+            rows.append(item("metric", name, value=v, unit=metric_unit(name)))
 
     # controller
-    rows.append(_row("controller", "gain", value=controller.gain, note="k of k prod(s - z_i) / prod(s - p_i)"))
+    rows.append(item("controller", "gain", value=controller.gain, note="k of k prod(s - z_i) / prod(s - p_i)"))
     for i, z in enumerate(controller.zeros):
-        rows.append(_row("controller", "zero", i, z.real, z.imag, unit="rad/s"))
+        rows.append(item("controller", "zero", i, z.real, z.imag, unit="rad/s"))
     for i, p in enumerate(controller.poles):
-        rows.append(_row("controller", "pole", i, p.real, p.imag, unit="rad/s"))
+        rows.append(item("controller", "pole", i, p.real, p.imag, unit="rad/s"))
     rows += _poly_rows("controller", "numerator", controller.num)
     rows += _poly_rows("controller", "denominator", controller.den)
-    rows.append(_row("controller", "delay_s", value=controller.delay, unit="s"))
+    rows.append(item("controller", "delay_s", value=controller.delay, unit="s"))
 
     # closed-loop poles
     pade = record.get("pade_order", 0)
@@ -254,8 +266,12 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
         mag = abs(p)
         zeta = -p.real / mag if mag > 0 else 1.0
         note = f"damping {zeta:.4g}, |s| {mag:.6g} rad/s" + (f"; Pade order {pade} for the dead time" if pade else "")
-        rows.append(_row("closed_loop_pole", "pole", i, p.real, p.imag, unit="rad/s", note=note))
+        rows.append(item("closed_loop_pole", "pole", i, p.real, p.imag, unit="rad/s", note=note))
 
+    for r in extra_items:
+        if len(r) != len(COLUMNS):
+            raise ExportError(f"{where}: an extra row has {len(r)} fields; expected {len(COLUMNS)} (make it with item())")
+        rows.append(list(r))
     if sample_time is not None:
         rows += _discrete_rows(where, plant, controller, record, sample_time, method, prewarp)
     return rows
@@ -294,63 +310,56 @@ def _discrete_rows(where, plant, controller, record, sample_time, method, prewar
                            "c = 2/T, or w/tan(w T/2) when pre-warped",
                  "zoh": "zero-order-hold (step-invariant) equivalent of the controller"}[method]
     rows += [
-        _row("discrete", "sample_time_s", value=T, unit="s"),
-        _row("discrete", "method", note=method),
-        _row("discrete", "method_detail", note=meth_note),
-        _row("discrete", "prewarp_rad_s", value=w_pre, unit="rad/s", note=pre_note),
+        item("discrete", "sample_time_s", value=T, unit="s"),
+        item("discrete", "method", note=method),
+        item("discrete", "method_detail", note=meth_note),
+        item("discrete", "prewarp_rad_s", value=w_pre, unit="rad/s", note=pre_note),
     ]
-    rows += [_row("discrete", "b", k, c, note="coefficient of e[k-index]" if k == 0 else "")
+    rows += [item("discrete", "b", k, c, note="coefficient of e[k-index]" if k == 0 else "")
              for k, c in enumerate(b)]
-    rows += [_row("discrete", "a", k, c, note="coefficient of u[k-index]; a_0 = 1" if k == 0 else "")
+    rows += [item("discrete", "a", k, c, note="coefficient of u[k-index]; a_0 = 1" if k == 0 else "")
              for k, c in enumerate(a)]
-    rows.append(_row("discrete", "difference_equation", note=_difference_equation(b, a)))
+    rows.append(item("discrete", "difference_equation", note=_difference_equation(b, a)))
 
     sec = "discrete_check"
     rows += [
-        _row(sec, "stable", value=loop["stable"],
+        item(sec, "stable", value=loop["stable"],
              note="ZOH-sampled plant (dead time exact) under this discrete controller: every closed-loop pole "
                   "strictly inside the unit circle (exact test); " + _BOOL_NOTE),
-        _row(sec, "spectral_radius", value=loop["spectral_radius"], note="largest |z| of the closed-loop poles"),
-        _row(sec, "gain_margin_db", value=loop["gain_margin_db"], unit="dB"),
-        _row(sec, "gain_margin_low_db", value=loop["gain_margin_low_db"], unit="dB"),
-        _row(sec, "phase_margin_deg", value=loop["phase_margin_deg"], unit="deg"),
-        _row(sec, "crossover_rad_s", value=loop["crossover_rad_s"], unit="rad/s"),
+        item(sec, "spectral_radius", value=loop["spectral_radius"], note="largest |z| of the closed-loop poles"),
+        item(sec, "gain_margin_db", value=loop["gain_margin_db"], unit="dB"),
+        item(sec, "gain_margin_low_db", value=loop["gain_margin_low_db"], unit="dB"),
+        item(sec, "phase_margin_deg", value=loop["phase_margin_deg"], unit="deg"),
+        item(sec, "crossover_rad_s", value=loop["crossover_rad_s"], unit="rad/s"),
     ]
     wct = wc * T if math.isfinite(wc) else loop["crossover_rad_s"] * T
-    rows.append(_row(sec, "wc_times_T", value=wct, unit="rad",
+    rows.append(item(sec, "wc_times_T", value=wct, unit="rad",
                      note="continuous gain crossover times the sample time"))
     for i, p in enumerate(loop["poles"]):
-        rows.append(_row(sec, "pole", i, p.real, p.imag, note=f"|z| {abs(p):.6g}"))
+        rows.append(item(sec, "pole", i, p.real, p.imag, note=f"|z| {abs(p):.6g}"))
     if not loop["stable"]:
-        rows.append(_row(sec, "warning", note=(
+        rows.append(item(sec, "warning", note=(
             f"the sampled loop is NOT stable at T = {T:g} s (spectral radius {loop['spectral_radius']:.6g}); "
             "do not implement this discrete controller; sample faster or redesign")))
     if math.isfinite(wct) and wct > SLOW_SAMPLING:
-        rows.append(_row(sec, "warning", note=(
+        rows.append(item(sec, "warning", note=(
             f"w_c*T = {wct:.3g} > {SLOW_SAMPLING}: sampling is slow relative to the crossover; the discrete "
             "loop departs from the continuous design (a common-practice rule of thumb, not a hard limit; "
             "check the discrete margins above)")))
     return rows
 
 
-def _atomic_write(path: str, rows: list[list[str]], spec_name: str) -> None:
+def _atomic_write(path: str, rows: list[list[str]]) -> None:
     folder = os.path.dirname(os.path.abspath(path))
-    header = [
-        f"# synth {__version__} design export: {' '.join(str(spec_name).split())}",
-        "# long format, one quantity per row; read with pandas.read_csv(path, comment='#')",
-        "# columns: section, name, index (power of s / delay k of z^-k / running number), value, imag,",
-        "#   limit, slack, met (1/0), unit, note; infinities as inf/-inf, undefined values empty",
-        "# sections: " + ", ".join(SECTIONS) + " (see the synth.export module documentation)",
-        "# " + CAUTION,
-    ]
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".tmp", dir=folder)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)       # the user's umask, not mkstemp's 0600: colleagues can read it
         with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-            for line in header:
-                fh.write(line + "\n")
             for r in [COLUMNS] + rows:
-                fh.write(",".join(_field(x) for x in r) + "\n")
+                fh.write(",".join(_field(x) for x in r) + "\r\n")     # RFC 4180: CRLF line ends
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -369,9 +378,13 @@ def _atomic_write(path: str, rows: list[list[str]], spec_name: str) -> None:
 def _read_rows(path: str) -> list[dict[str, str]]:
     try:
         with open(path, newline="", encoding="utf-8") as fh:
-            lines = [ln for ln in fh if not ln.startswith("#")]
+            lines = list(fh)
+    except UnicodeDecodeError:
+        raise ExportError(f"{path}: not a UTF-8 text file; expected a design export written by synth") from None
     except OSError as exc:
         raise ExportError(f"cannot read the design export {path}: {exc.strerror or exc}") from exc
+    while lines and lines[0].startswith("#"):     # layout 1 opened with '#' comment lines
+        lines.pop(0)
     reader = csv.reader(lines)
     try:
         head = next(reader)

@@ -1,6 +1,7 @@
 """CSV export of a design and its reader.
 
-References: pandas.read_csv(comment="#") as the independent reader of the file;
+References: pandas.read_csv and csv.reader, both with their defaults, as the independent
+readers of the file (RFC 4180: Shafranovich, IETF RFC 4180, 2005);
 synth.describe.check_controller re-run on the re-imported design as the reference for
 the metrics; synth.discrete.tustin / discrete_loop (tested against scipy in
 test_discrete.py) for the discrete rows; Ogata, *Modern Control Engineering*, 5th ed.,
@@ -9,6 +10,7 @@ ex. 7-26 (REFERENCES.md, recomputed: crossover 8.89 rad/s) as the worked design.
 
 from __future__ import annotations
 
+import csv
 import math
 import os
 
@@ -21,7 +23,7 @@ from hypothesis import strategies as st
 from synth import CAUTION
 from synth.describe import check_controller, controller_record
 from synth.discrete import discrete_loop, tustin, zoh
-from synth.export import COLUMNS, SECTIONS, ExportError, export_design, read_design
+from synth.export import COLUMNS, SECTIONS, ExportError, export_design, item, read_design
 from synth.lti import TransferFunction
 from synth.requirements import REQUIREMENTS
 
@@ -44,16 +46,16 @@ def _export(tmp_path, rec, name="ogata.csv", **kw):
 
 def test_csv_reads_with_pandas_and_has_every_section(tmp_path, ogata_record):
     path = _export(tmp_path, ogata_record, sample_time=0.01)
-    df = pd.read_csv(path, comment="#")
+    df = pd.read_csv(path)
     assert list(df.columns) == COLUMNS
     assert set(df["section"]) == set(SECTIONS)
     for col in ("index", "value", "imag", "limit", "slack", "met"):
         assert df[col].dtype.kind == "f", col          # numeric columns stay numeric for pandas
-    # the caution: a comment line and a row
-    text = path.read_text()
-    assert any(line.startswith("#") and CAUTION in line for line in text.splitlines())
+    # the caution is the first data row; no comment lines
+    assert df.iloc[0]["section"] == "caution" and df.iloc[0]["note"] == CAUTION
     caution = df[df.section == "caution"]
     assert list(caution["note"]) == [CAUTION]
+    assert not any(line.startswith("#") for line in path.read_text().splitlines())
     # the spec name with a comma and a '#' survives pandas' comment handling
     assert df[(df.section == "design") & (df.name == "spec_name")]["note"].item() == "Ogata 7-26 lead, #1"
     # infinities come back as floats
@@ -61,8 +63,49 @@ def test_csv_reads_with_pandas_and_has_every_section(tmp_path, ogata_record):
     assert gm == math.inf
 
 
+def test_csv_module_reads_it_with_defaults_every_row_the_same_width(tmp_path, ogata_record):
+    # reference: Python's csv.reader with its default dialect (RFC 4180 quoting); a file whose
+    # text holds commas, quotes and '#' in a field must still give one field count everywhere
+    path = tmp_path / "w.csv"
+    export_design(path, OGATA_G, OGATA_C, ogata_record, 'Ogata, "7-26" #1', REQS, sample_time=0.01)
+    with open(path, newline="", encoding="utf-8") as fh:
+        rows = list(csv.reader(fh))
+    assert rows[0] == COLUMNS
+    assert {len(r) for r in rows} == {len(COLUMNS)}
+    assert rows[1][:2] == ["caution", "caution"] and rows[1][-1] == CAUTION
+    names = {(r[0], r[1]): r for r in rows[1:]}
+    assert names[("design", "spec_name")][-1] == 'Ogata, "7-26" #1'
+    assert names[("design", "export_format")][3] == "2"
+    assert path.read_bytes().count(b"\r\n") == len(rows)      # RFC 4180: CRLF after every record
+    df = pd.read_csv(path)
+    assert df.shape == (len(rows) - 1, len(COLUMNS))
+
+
+def test_export_has_the_users_permissions_and_takes_extra_items(tmp_path, ogata_record):
+    old = os.umask(0o022)
+    try:
+        path = tmp_path / "p.csv"
+        export_design(path, OGATA_G, OGATA_C, ogata_record, "x", REQS,
+                      extra_items=[item("model_set", "models", value=3, note="invented")])
+    finally:
+        os.umask(old)
+    assert (path.stat().st_mode & 0o777) == 0o644
+    df = pd.read_csv(path)
+    assert df[df.section == "model_set"]["value"].item() == 3
+    with pytest.raises(ExportError, match="fields"):
+        export_design(tmp_path / "q.csv", OGATA_G, OGATA_C, ogata_record, "x", REQS, extra_items=[["a", "b"]])
+
+
+def test_layout_1_files_with_comment_lines_still_read(tmp_path, ogata_record):
+    path = _export(tmp_path, ogata_record)
+    old = tmp_path / "old.csv"
+    old.write_text("# synth design export\n# caution ...\n" + path.read_text())
+    back = read_design(old)
+    np.testing.assert_array_equal(back["controller"].num, OGATA_C.num)
+
+
 def test_requirement_rows_match_the_record(tmp_path, ogata_record):
-    df = pd.read_csv(_export(tmp_path, ogata_record), comment="#")
+    df = pd.read_csv(_export(tmp_path, ogata_record))
     req = df[df.section == "requirement"].set_index("name")
     assert list(req.index) == list(REQS)
     for key, r in ogata_record["requirements"].items():
@@ -75,7 +118,7 @@ def test_requirement_rows_match_the_record(tmp_path, ogata_record):
 
 
 def test_metric_and_controller_rows(tmp_path, ogata_record):
-    df = pd.read_csv(_export(tmp_path, ogata_record), comment="#")
+    df = pd.read_csv(_export(tmp_path, ogata_record))
     met = df[df.section == "metric"].set_index("name")
     for name in ("phase_margin_deg", "crossover_rad_s", "sensitivity_peak", "velocity_constant"):
         assert met.loc[name, "value"] == ogata_record[name]
@@ -136,7 +179,7 @@ def test_round_trip_reproduces_metrics(tmp_path, case):
 def test_discrete_rows(tmp_path, ogata_record):
     T = 0.01
     path = _export(tmp_path, ogata_record, sample_time=T)
-    df = pd.read_csv(path, comment="#")
+    df = pd.read_csv(path)
     d = df[df.section == "discrete"].set_index("name")
     assert d.loc["sample_time_s", "value"] == T
     assert d.loc["method", "note"] == "tustin"
@@ -160,7 +203,7 @@ def test_discrete_rows(tmp_path, ogata_record):
 def test_slow_and_unstable_sampling_are_flagged(tmp_path, ogata_record):
     # w_c T = 8.89 * 0.3 = 2.7 > 0.3; Tustin at T = 0.3 s loses stability (test_discrete.py)
     path = _export(tmp_path, ogata_record, sample_time=0.3, prewarp=False)
-    df = pd.read_csv(path, comment="#")
+    df = pd.read_csv(path)
     chk = df[df.section == "discrete_check"]
     assert chk[chk.name == "stable"]["value"].item() == 0.0
     notes = " ".join(chk[chk.name == "warning"]["note"])
@@ -181,7 +224,7 @@ def test_zoh_method(tmp_path, ogata_record):
 
 
 def test_no_sample_time_means_no_discrete_sections(tmp_path, ogata_record):
-    df = pd.read_csv(_export(tmp_path, ogata_record), comment="#")
+    df = pd.read_csv(_export(tmp_path, ogata_record))
     assert not {"discrete", "discrete_check"} & set(df.section)
     assert read_design(tmp_path / "ogata.csv")["discrete"] is None
 
@@ -256,6 +299,6 @@ def test_controller_coefficients_round_trip_exactly(tmp_path, num, den, lead):
     np.testing.assert_array_equal(back.num, c.num)
     np.testing.assert_array_equal(back.den, c.den)
     # pandas reads the same numbers (its own float parser, exact for repr strings)
-    df = pd.read_csv(path, comment="#")
+    df = pd.read_csv(path)
     got = df[(df.section == "controller") & (df.name == "denominator")].sort_values("index", ascending=False)
     np.testing.assert_array_equal(got["value"].to_numpy(), c.den)

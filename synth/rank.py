@@ -51,6 +51,8 @@ DEFAULT_FLOOR = 1e-3
 # columns rank() (re)computes; any older copies are dropped first
 RANK_COLUMNS = ("feasible", "violation", "front", "crowding", "knee", "rank")
 
+INFEASIBLE_TOL = 0.01     # near-copy distance among infeasible rows, in the dedupe columns (log10: 2.3 %)
+
 _CHUNK_ELEMENTS = 1 << 22   # bound on n_chunk * n booleans per temporary in the pairwise dominance
 
 
@@ -321,8 +323,36 @@ def dedupe(df: pd.DataFrame, cols: Sequence[str], tol: float = 1e-3) -> np.ndarr
         raise KeyError(f"dedupe columns {missing} not in the table")
     if not cols or len(df) == 0:
         return np.ones(len(df), dtype=bool)
-    keys = np.round(df[cols].to_numpy(dtype=float) / tol) + 0.0   # + 0.0 folds -0.0 into 0.0
+    return dedupe_values(df[cols].to_numpy(dtype=float), tol)
+
+
+def dedupe_values(values: np.ndarray, tol: float = 1e-3) -> np.ndarray:
+    """:func:`dedupe` on an (N, d) array of design parameters (NaN equals NaN)."""
+    if tol <= 0:
+        raise ValueError(f"dedupe tolerance must be positive, got {tol}")
+    values = np.asarray(values, float)
+    if values.ndim != 2 or values.shape[1] == 0 or values.shape[0] == 0:
+        return np.ones(len(values), dtype=bool)
+    keys = np.round(values / tol) + 0.0   # + 0.0 folds -0.0 into 0.0
     return ~pd.DataFrame(keys).duplicated(keep="first").to_numpy()
+
+
+def design_values(df: pd.DataFrame, cols: Sequence[str], family=None) -> np.ndarray:
+    """The parameter values two rows are compared on when de-duplicating.
+
+    With a lead-lag ``family`` (synth.structures.Family) whose parameter names are the
+    columns, inactive stages are dropped first (:func:`synth.stages.equivalent_params`,
+    crossover region from the ``phase_margin_rad_s`` and ``crossover_rad_s`` columns), so a
+    design with an inactive stage counts as the simpler structure.
+    """
+    X = df[list(cols)].to_numpy(dtype=float)
+    if family is None or family.kind != "lead-lag" or list(cols) != list(family.names):
+        return X
+    from .stages import crossover_region, equivalent_params
+    nan = np.full(len(df), np.nan)
+    lo, hi = crossover_region(df["phase_margin_rad_s"].to_numpy(float) if "phase_margin_rad_s" in df else nan,
+                              df["crossover_rad_s"].to_numpy(float) if "crossover_rad_s" in df else nan)
+    return equivalent_params(family, X, lo, hi)
 
 
 # ------------------------------------------------------------------ ranking
@@ -339,10 +369,12 @@ def _is_computed(col) -> bool:
 
 def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequence[str],
          primary: str | None = None, dedupe_cols: Sequence[str] | None = None,
-         tol: float = 1e-3) -> pd.DataFrame:
+         tol: float = 1e-3, family=None, infeasible_tol: float = INFEASIBLE_TOL) -> pd.DataFrame:
     """Rank evaluated designs, best first; returns a new DataFrame (``df`` untouched).
 
-    1. Near-duplicates on ``dedupe_cols`` are removed first (:func:`dedupe`, ``tol``).
+    1. Near-duplicates on ``dedupe_cols`` are removed first (:func:`dedupe`, ``tol``);
+       with ``family``, a design with inactive stages counts as the simpler structure
+       (:func:`design_values`).
     2. ``slack_<key>``, ``met_<key>`` and ``feasible`` are recomputed for the given
        requirements from the metric columns and ``internally_stable`` (and
        ``admissible`` if present); slack/met columns of other requirement keys are
@@ -353,6 +385,11 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
        (then crowding descending) if given, else by ``crowding`` descending.
        Infeasible rows follow by ``violation`` ascending (then ``primary``), with
        ``front = -1`` and ``crowding = NaN``. Remaining ties keep the input order.
+       Among the infeasible rows (with ``dedupe_cols``), a row within
+       ``infeasible_tol`` of a less-violating one in every compared value (log10
+       parameters: 0.01 is 2.3 %) is a near-copy and is dropped
+       (:func:`synth.stages.near_copies`), so the least-violating rows that an
+       infeasible run shows are distinct designs.
     4. ``knee`` marks the knee (:func:`knee_index`) of the finite first front, and
        the knee row is moved to the top; ``rank`` is 1..n.
 
@@ -365,8 +402,14 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
     if missing:
         raise KeyError(f"objective/primary column(s) {missing} not in the table")
     out = df
+    X = None
     if dedupe_cols:
-        out = out.iloc[np.flatnonzero(dedupe(out, dedupe_cols, tol))]
+        missing = [c for c in dedupe_cols if c not in df.columns]
+        if missing:
+            raise KeyError(f"dedupe columns {missing} not in the table")
+        X = design_values(out, dedupe_cols, family)
+        keep = np.flatnonzero(dedupe_values(X, tol))
+        out, X = out.iloc[keep], X[keep]
     out = out.drop(columns=[c for c in out.columns if _is_computed(c)]).copy()
     n = len(out)
 
@@ -401,6 +444,14 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
         keys = (neg_crowd,)
     level_key = np.where(feasible, front.astype(float), viol)
     order = np.lexsort(keys + (level_key, ~feasible))
+    if X is not None and infeasible_tol > 0:
+        bad = np.flatnonzero(~feasible[order])               # infeasible positions, least violating first
+        if bad.size > 1:
+            from .stages import near_copies
+            drop = bad[~near_copies(X[order[bad]], infeasible_tol)]
+            if drop.size:
+                order = np.delete(order, drop)
+                n = order.size
 
     out = out.iloc[order]
     front, crowd, viol, feasible, F = front[order], crowd[order], viol[order], feasible[order], F[order]

@@ -116,7 +116,8 @@ def ranked(run: Run, requirements: dict | None = None) -> pd.DataFrame:
         return df
     reqs = dict(run.spec.requirements) if requirements is None else requirements
     names = run.manifest.get("parameters") or []
-    return rank(df, reqs, list(run.spec.objectives), dedupe_cols=[c for c in names if c in df.columns])
+    return rank(df, reqs, list(run.spec.objectives), dedupe_cols=[c for c in names if c in df.columns],
+                family=family_of(run))     # inactive stages count as the simpler structure
 
 
 def family_of(run: Run):

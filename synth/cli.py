@@ -112,6 +112,10 @@ def _candidate(run_dir: Path, cid: int):
     spec = run.spec
     rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
                            spec.options.pade_order)
+    from .describe import structure_details
+    from .runs import family_of
+    fam = family_of(run)
+    rec.update(structure_details(fam, [float(row[n]) for n in fam.names], rec))    # PID forms, stage activity
     return run, row, c, rec
 
 

@@ -87,6 +87,27 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     return rec
 
 
+def structure_details(family, params, record: Mapping) -> dict:
+    """What the family's parameters say beyond the transfer function, for show and export.
+
+    ``pid_forms`` (PID/PI families): the parallel, standard and series forms
+    (:mod:`synth.pid_forms`) with their text; ``stages`` (lead-lag families): each stage's
+    corners and whether it is active (:mod:`synth.stages`, crossover region from the
+    record's ``phase_margin_rad_s`` and ``crossover_rad_s``). Empty for other families.
+    """
+    from .pid_forms import forms_from_params, forms_text
+    from .stages import stage_infos
+    p = np.asarray(params, float).ravel()
+    out: dict[str, Any] = {}
+    if family.kind in ("pid", "pi"):
+        f = forms_from_params(family.kind, p, family.sign)
+        out["pid_forms"] = dict(f.as_dict(), text=forms_text(f))
+    elif family.kind == "lead-lag" and family.pairs:
+        out["stages"] = [s.as_dict() for s in stage_infos(family, p, record.get("phase_margin_rad_s", np.nan),
+                                                           record.get("crossover_rad_s", np.nan))]
+    return out
+
+
 def controller_record(c: TransferFunction) -> dict:
     return {"gain": c.gain, "zeros": list(c.zeros), "poles": list(c.poles),
             "numerator": list(c.num), "denominator": list(c.den)}
@@ -144,6 +165,12 @@ def format_record(rec: dict, title: str = "") -> str:
     out.append(f"controller  C(s) = ({format_poly(c['numerator'])}) / ({format_poly(c['denominator'])})")
     out.append(f"            gain {fmt_num(c['gain'])}, zeros [{', '.join(fmt_complex(z) for z in c['zeros'])}], "
                f"poles [{', '.join(fmt_complex(p) for p in c['poles'])}]")
+    for line in (rec.get("pid_forms") or {}).get("text", []):
+        out.append(f"            {line}")
+    for st in rec.get("stages") or []:
+        state = "active" if st["active"] else f"INACTIVE ({st['reason']})"
+        out.append(f"            stage {st['stage']} {st['role']}: zero -{fmt_num(st['zero_rad_s'])}, "
+                   f"pole -{fmt_num(st['pole_rad_s'])} rad/s, {state}")
     out.append("")
     out.append(f"verdict     {verdict_text(rec)}")
     met = [r["met"] for r in rec["requirements"].values()]

@@ -52,6 +52,15 @@ Sections
                       ``spectral_radius``, ``gain_margin_db``, ``gain_margin_low_db``,
                       ``phase_margin_deg``, ``crossover_rad_s``, ``wc_times_T``, ``pole``
                       rows (z-plane closed-loop poles) and ``warning`` rows (text)
+``pid_parallel``      PID/PI designs: ``kp``, ``ki`` [1/s], ``kd`` [s], ``tf_s`` (derivative filter)
+``pid_standard``      ``kc``, ``ti_s``, ``td_s``, ``n`` (filter factor Td/Tf)
+``pid_series``        ``k``, ``ti_s``, ``td_s``, ``tf_s``; one ``unavailable`` row (reason in
+                      ``note``) when the zeros are complex or the design is a PI
+``stage``             lead-lag designs: per stage (index = stage number) ``zero`` and
+                      ``pole`` corner magnitudes [rad/s] and ``active`` (1/0, the rule in ``note``)
+``incremental``       with a sample time and integral action: the velocity form
+                      du[k] = sum_i b_i e[k-i] - sum_{i>=1} a_i du[k-i], u[k] = u[k-1] + du[k]
+                      (``b``, ``a`` rows, index = delay) and its ``equation`` as text
 
 Every row is made by :func:`item`, the one row helper; a caller adds its own rows
 (e.g. for a set of plant models) by passing ``extra_items`` built with it to
@@ -73,17 +82,19 @@ import numpy as np
 
 from . import CAUTION, __version__
 from .discrete import as_pair, discrete_loop, tustin, zoh
+from .incremental import incremental_equation, incremental_form
 from .lti import TransferFunction, format_poly
 from .requirements import REQUIREMENTS
 
 COLUMNS = ["section", "name", "index", "value", "imag", "limit", "slack", "met", "unit", "note"]
 SECTIONS = ["caution", "design", "plant", "requirement", "metric", "controller", "closed_loop_pole",
             "discrete", "discrete_check"]
+OPTIONAL_SECTIONS = ["pid_parallel", "pid_standard", "pid_series", "stage", "incremental"]
 EXPORT_FORMAT = 2       # 1: '#' comment lines before the header; 2: plain RFC 4180, header first
 METHODS = ("tustin", "zoh")
 SLOW_SAMPLING = 0.3     # w_c T above which sampling counts as slow (common-practice rule of thumb)
 
-_NESTED = {"requirements", "controller", "certificate", "closed_loop_poles"}
+_NESTED = {"requirements", "controller", "certificate", "closed_loop_poles", "pid_forms", "stages"}
 _BOOL_NOTE = "boolean: 1 yes, 0 no"
 
 
@@ -268,12 +279,46 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
         note = f"damping {zeta:.4g}, |s| {mag:.6g} rad/s" + (f"; Pade order {pade} for the dead time" if pade else "")
         rows.append(item("closed_loop_pole", "pole", i, p.real, p.imag, unit="rad/s", note=note))
 
+    rows += _structure_rows(record)
     for r in extra_items:
         if len(r) != len(COLUMNS):
             raise ExportError(f"{where}: an extra row has {len(r)} fields; expected {len(COLUMNS)} (make it with item())")
         rows.append(list(r))
     if sample_time is not None:
         rows += _discrete_rows(where, plant, controller, record, sample_time, method, prewarp)
+    return rows
+
+
+_PID_ROWS = {
+    "pid_parallel": ("C(s) = kp + ki/s + kd s/(Tf s + 1)",
+                     [("kp", "kp", ""), ("ki", "ki", "1/s"), ("kd", "kd", "s"), ("tf_s", "tf_s", "s")]),
+    "pid_standard": ("C(s) = Kc (1 + 1/(Ti s) + Td s/(1 + s Td/N)); Kc = kp, Ti = kp/ki, Td = kd/kp, N = Td/Tf",
+                     [("kc", "kc", ""), ("ti_s", "ti_s", "s"), ("td_s", "td_s", "s"), ("n", "n", "")]),
+    "pid_series": ("C(s) = K' (1 + 1/(Ti' s)) (1 + Td' s)/(1 + Tf s)",
+                   [("k", "k", ""), ("ti_s", "ti_s", "s"), ("td_s", "td_s", "s"), ("tf_s", "tf_s", "s")]),
+}
+
+
+def _structure_rows(record: Mapping) -> list[list[str]]:
+    """PID forms (synth.pid_forms; Astrom & Hagglund 2006, ch. 3) and stage activity (synth.stages)."""
+    rows: list[list[str]] = []
+    f = record.get("pid_forms")
+    if f:
+        for section, (formula, names) in _PID_ROWS.items():
+            values = f.get(section.split("_", 1)[1])
+            if values is None:
+                rows.append(item(section, "unavailable", note=f.get("series_note", "")))
+                continue
+            for key, name, unit in names:
+                if key in values:
+                    rows.append(item(section, name, value=values[key], unit=unit, note=formula))
+    for st in record.get("stages") or []:
+        i = int(st["stage"])
+        rows.append(item("stage", "zero", i, st["zero_rad_s"], unit="rad/s",
+                         note=f"{st['role']} stage (s + zero)/(s + pole): corner magnitude, root at -zero"))
+        rows.append(item("stage", "pole", i, st["pole_rad_s"], unit="rad/s", note="corner magnitude, root at -pole"))
+        rows.append(item("stage", "active", i, bool(st["active"]),
+                         note=("active; " if st["active"] else "INACTIVE: " + st["reason"] + "; ") + _BOOL_NOTE))
     return rows
 
 
@@ -320,6 +365,15 @@ def _discrete_rows(where, plant, controller, record, sample_time, method, prewar
     rows += [item("discrete", "a", k, c, note="coefficient of u[k-index]; a_0 = 1" if k == 0 else "")
              for k, c in enumerate(a)]
     rows.append(item("discrete", "difference_equation", note=_difference_equation(b, a)))
+    inc = incremental_form(b, a)
+    if inc is not None:
+        bv, av = inc
+        rows += [item("incremental", "b", k, c, note="coefficient of e[k-index] in du[k]" if k == 0 else "")
+                 for k, c in enumerate(bv)]
+        rows += [item("incremental", "a", k, c, note="coefficient of du[k-index]; a_0 = 1" if k == 0 else "")
+                 for k, c in enumerate(av)]
+        rows.append(item("incremental", "equation", note=incremental_equation(bv, av)
+                         + "; velocity form of the same controller (synth.incremental)"))
 
     sec = "discrete_check"
     rows += [
@@ -438,7 +492,9 @@ def read_design(path) -> dict:
     rows), ``requirements`` {key: limit}, ``metrics`` {name: value} (booleans as bool,
     text metrics as str), ``discrete`` ({b, a, T, method, prewarp_rad_s}) or None,
     ``discrete_check`` ({name: value}) or None, ``spec_name``, ``structure``,
-    ``settling_band`` (None when not recorded) and ``caution``.
+    ``settling_band`` (None when not recorded), ``pid_forms`` ({section: {name: value}}),
+    ``stages`` (list of {stage, zero_rad_s, pole_rad_s, active}), ``incremental``
+    ({b, a} of the velocity form), each None when absent, and ``caution``.
     """
     path = os.fspath(path)
     rows = _read_rows(path)
@@ -496,6 +552,19 @@ def read_design(path) -> dict:
                 check[r["name"]] = (v == 1.0) if r["name"] == "stable" else v
         check["warnings"] = [r["note"] for r in rows if r["section"] == "discrete_check" and r["name"] == "warning"]
     band = [_f(path, r) for r in rows if r["section"] == "design" and r["name"] == "settling_band"]
+    pid = {sec: {r["name"]: _f(path, r) for r in rows if r["section"] == sec and r["name"] != "unavailable"}
+           for sec in _PID_ROWS if any(r["section"] == sec for r in rows)} or None
+    stages = None
+    if any(r["section"] == "stage" for r in rows):
+        by = {}
+        for r in rows:
+            if r["section"] == "stage":
+                by.setdefault(int(r["index"]), {})[r["name"]] = _f(path, r)
+        stages = [{"stage": i, "zero_rad_s": v.get("zero"), "pole_rad_s": v.get("pole"),
+                   "active": v.get("active") == 1.0} for i, v in sorted(by.items())]
+    incremental = None
+    if any(r["section"] == "incremental" for r in rows):
+        incremental = {"b": _poly(path, rows, "incremental", "b"), "a": _poly(path, rows, "incremental", "a")}
     return {
         "controller": controller,
         "plant": plant,
@@ -506,5 +575,8 @@ def read_design(path) -> dict:
         "spec_name": text("design", "spec_name"),
         "structure": text("design", "structure"),
         "settling_band": band[0] if band else None,
+        "pid_forms": pid,
+        "stages": stages,
+        "incremental": incremental,
         "caution": text("caution", "caution"),
     }

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from . import CAUTION
-from .describe import fmt_complex, fmt_num
+from .describe import fmt_complex, fmt_num, structure_details
 from .evaluate import METRICS
 from .requirements import REQUIREMENTS, requirement_value
 from .runs import Run, conflicts, family_of, recheck
@@ -31,17 +31,31 @@ def _zp(run: Run, rows: pd.DataFrame):
     return gains, zeros, poles
 
 
+def _details(run: Run, rows: pd.DataFrame) -> list[dict]:
+    """Per row: ``pid_forms`` (PID/PI) or ``stages`` (lead-lag), see synth.describe.structure_details."""
+    fam = family_of(run)
+    P = rows[fam.names].to_numpy(float)
+    return [structure_details(fam, P[i], r) for i, (_, r) in enumerate(rows.iterrows())]
+
+
 def json_rows(run: Run, df: pd.DataFrame, n: int) -> list[dict]:
-    """Row objects, best first: id, rank, feasible, certified, controller and every metric."""
+    """Row objects, best first: id, rank, feasible, certified, controller, PID forms or stage
+    activity, and every metric."""
     rows = recheck(run, df.head(n))
     if rows.empty:
         return []
     gains, zeros, poles = _zp(run, rows)
+    details = _details(run, rows)
     out = []
     for i, (_, r) in enumerate(rows.iterrows()):
         obj = {"id": int(r["id"]), "rank": int(r["rank"]), "feasible": bool(r["feasible"]),
                "knee": bool(r.get("knee", False)),
                "controller": {"gain": float(gains[i]), "zeros": list(zeros[i]), "poles": list(poles[i])}}
+        d = details[i]
+        if "pid_forms" in d:
+            obj["pid_forms"] = {k: v for k, v in d["pid_forms"].items() if k != "text"}
+        if "stages" in d:
+            obj["stages"] = d["stages"]
         for m in METRICS:
             v = r[m]
             obj[m] = list(v[~np.isnan(v)]) if m == "closed_loop_poles" else v
@@ -81,6 +95,7 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
         return "\n".join(lines + ["(no candidates)"])
     objs = list(run.spec.objectives)
     gains, zeros, poles = _zp(run, rows)
+    details = _details(run, rows)
     head = f"{'rank':>5} {'id':>7}  {'gain':>9}  {'zeros':<17} {'poles':<17}"
     for o in objs:
         head += f" {SHORT.get(o, o)[:11]:>11}"
@@ -89,11 +104,15 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
         mark = "*" if r.get("knee", False) else (" " if r["feasible"] else "x")
         cert = "" if (r["certified"] or not r["feasible"]) else " (uncertified)"
         z, p = _roots_text(zeros[i]), _roots_text(poles[i])
-        line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(gains[i], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
+        idtext = str(int(r["id"])) + ("~" if _inactive(details[i]) else "")
+        line = f"{int(r['rank']):>4}{mark} {idtext:>7}  {fmt_num(gains[i], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
         for o in objs:
             line += f" {fmt_num(r[o], 4):>11}"
         lines.append(line + cert)
-    lines.append("   * knee of the front   x infeasible (ranked by total normalised violation)")
+    lines.append("   * knee of the front   x infeasible (ranked by total normalised violation)"
+                 + ("   ~ inactive stage" if any(_inactive(d) for d in details) else ""))
+    lines += _inactive_lines(rows, details)
+    lines += _pid_lines(rows, details)
     reqs = dict(run.spec.requirements)
     if reqs:
         k = min(len(rows), 5)
@@ -112,6 +131,47 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
             lines.append(line)
         lines.append("   ! requirement not met; slack per requirement: 'synth show RUN ID'")
     return "\n".join(lines)
+
+
+def _inactive(d: dict) -> bool:
+    return any(not s["active"] for s in d.get("stages") or [])
+
+
+def _inactive_lines(rows: pd.DataFrame, details: list[dict]) -> list[str]:
+    """One line per row with an inactive stage: which stage and which rule (synth.stages)."""
+    out = []
+    for (_, r), d in zip(rows.iterrows(), details):
+        for s in d.get("stages") or []:
+            if not s["active"]:
+                out += textwrap.wrap(f"#{int(r['id'])} stage {s['stage']} ({s['role']}, zero -{_short(s['zero_rad_s'])}, "
+                                     f"pole -{_short(s['pole_rad_s'])}) inactive: {s['reason']}", WIDTH,
+                                     initial_indent="   ~ ", subsequent_indent="     ")
+    return out
+
+
+def _pid_lines(rows: pd.DataFrame, details: list[dict]) -> list[str]:
+    """PID/PI settings of the shown rows in the parallel, standard and series forms (synth.pid_forms)."""
+    forms = [d.get("pid_forms") for d in details]
+    if not forms or forms[0] is None:
+        return []
+    g = lambda x: "-" if x is None else _short(float(x))     # noqa: E731
+    if forms[0]["kind"] == "pi":
+        lines = ["", "PI settings: parallel kp + ki/s; standard Kc (1 + 1/(Ti s)) with Kc = kp",
+                 f"{'id':>7}{'kp':>10}{'ki 1/s':>10}{'Ti s':>10}"]
+        for (_, r), f in zip(rows.iterrows(), forms):
+            lines.append(f"{int(r['id']):>7}{g(f['parallel']['kp']):>10}{g(f['parallel']['ki']):>10}"
+                         f"{g(f['standard']['ti_s']):>10}")
+        return lines
+    lines = ["", "PID settings: parallel kp + ki/s + kd s/(Tf s + 1); standard Kc (1 + 1/(Ti s) + Td s/(1 + s Td/N)),",
+             "Kc = kp; series K' (1 + 1/(Ti' s)) (1 + Td' s)/(1 + Tf s) ('-': complex zeros, no series form)",
+             "".join(h.rjust(9 if k else 7) for k, h in enumerate(
+                 ["id", "kp", "ki 1/s", "kd s", "Tf s", "Ti s", "Td s", "N", "K'", "Ti' s", "Td' s"]))]
+    for (_, r), f in zip(rows.iterrows(), forms):
+        pa, st, se = f["parallel"], f["standard"], f["series"] or {}
+        lines.append(f"{int(r['id']):>7}{g(pa['kp']):>9}{g(pa['ki']):>9}{g(pa['kd']):>9}{g(pa['tf_s']):>9}"
+                     f"{g(st['ti_s']):>9}{g(st['td_s']):>9}{g(st['n']):>9}{g(se.get('k')):>9}"
+                     f"{g(se.get('ti_s')):>9}{g(se.get('td_s')):>9}")
+    return lines
 
 
 def design_summary(run: Run, df: pd.DataFrame, top: int) -> str:

@@ -302,3 +302,51 @@ def test_controller_coefficients_round_trip_exactly(tmp_path, num, den, lead):
     df = pd.read_csv(path)
     got = df[(df.section == "controller") & (df.name == "denominator")].sort_values("index", ascending=False)
     np.testing.assert_array_equal(got["value"].to_numpy(), c.den)
+
+
+def test_pid_forms_stages_and_velocity_form_rows(tmp_path):
+    # reference: the parallel-form coefficients of the family (synth.structures) and
+    # scipy.signal.lfilter for the position form of the exported discrete controller
+    from scipy import signal
+
+    from synth.describe import structure_details
+    from synth.structures import Family
+    fam = Family(kind="pid")
+    params = np.log10([6.85, 7.07, 0.83, 0.0121])
+    num, den = fam.controllers(params[None, :])
+    c = TransferFunction(num[0], den[0])
+    plant = TransferFunction([3.0], [1.0, 4.0, 3.0])
+    rec = check_controller(plant, c, {"max_overshoot_pct": 15.0})
+    rec.update(structure_details(fam, params, rec))
+    path = tmp_path / "pid.csv"
+    export_design(path, plant, c, rec, "pid", {"max_overshoot_pct": 15.0}, sample_time=0.01)
+    back = read_design(path)
+    par = back["pid_forms"]["pid_parallel"]
+    kp, ki, kd, tf = par["kp"], par["ki"], par["kd"], par["tf_s"]
+    np.testing.assert_allclose([kp * tf + kd, kp + ki * tf, ki], num[0], rtol=1e-14)
+    std = back["pid_forms"]["pid_standard"]
+    assert std["ti_s"] == pytest.approx(kp / ki, rel=1e-14) and std["n"] == pytest.approx(kd / kp / tf, rel=1e-14)
+    assert set(back["pid_forms"]["pid_series"]) == {"k", "ti_s", "td_s", "tf_s"}
+    inc = back["incremental"]
+    b, a = back["discrete"]["b"], back["discrete"]["a"]
+    e = np.random.default_rng(3).normal(size=100)
+    u = np.cumsum(signal.lfilter(inc["b"], inc["a"], e))        # u[k] = u[k-1] + du[k]
+    np.testing.assert_allclose(u, signal.lfilter(b, a, e), rtol=1e-9, atol=1e-9 * np.abs(u).max())
+    df = pd.read_csv(path)
+    assert {"pid_parallel", "pid_standard", "pid_series", "incremental"} <= set(df.section)
+
+    # a lead-lag design with an inactive second stage (ratio 1.005, issue 11)
+    fam = Family(stages=("lead", "lead"))
+    params = np.array([1.5, np.log10(5.0), np.log10(40.0), np.log10(9950.0), np.log10(10000.0)])
+    num, den = fam.controllers(params[None, :])
+    c = TransferFunction(num[0], den[0])
+    rec = check_controller(OGATA_G, c, {})
+    rec.update(structure_details(fam, params, rec))
+    path = tmp_path / "ll.csv"
+    export_design(path, OGATA_G, c, rec, "lead-lead", {})
+    st = read_design(path)["stages"]
+    assert [s["active"] for s in st] == [True, False]
+    assert st[1]["zero_rad_s"] == pytest.approx(9950.0)
+    df = pd.read_csv(path)
+    note = df[(df.section == "stage") & (df.name == "active") & (df["index"] == 2)]["note"].item()
+    assert "INACTIVE" in note and "2 %" in note

@@ -146,37 +146,55 @@ def equivalent_params(family, params, w_lo, w_hi) -> np.ndarray:
     return p
 
 
-def near_copies(X: np.ndarray, tol: float) -> np.ndarray:
+def near_copies(X: np.ndarray, tol: float, neighbours: int = 12, passes: int = 8) -> np.ndarray:
     """Keep-mask over rows in the given order: a row within ``tol`` of an earlier kept row
     in every column (Chebyshev distance; NaN equals NaN) is dropped.
 
-    Greedy in row order, so the first (best ranked) of a cluster is kept and the kept
-    rows are pairwise more than ``tol`` apart: applying it again drops nothing. To bound
-    the work on dense clusters, rows sharing a grid cell of width ``tol`` (so within
-    ``tol`` of each other) are first reduced to the first of the cell; a dropped row is
-    then within 2 ``tol`` of a kept one.
+    The result is the greedy one (walk the rows in order, keep a row unless a kept row
+    is within ``tol``), computed without a loop over rows: each row is linked to its
+    ``neighbours`` nearest rows within ``tol`` (a k-d tree), and "kept = no kept earlier
+    neighbour" is iterated to its fixed point (exact on the links, since the links
+    point from earlier to later rows). Rows with more near neighbours than
+    ``neighbours`` are caught by repeating this on the kept rows (``passes``). So the
+    first (best ranked) of a cluster is kept, and applying it again drops nothing
+    (up to the ``passes`` bound on very dense clusters). Rows sharing a grid cell of
+    width ``tol`` are first reduced to the first of the cell; a dropped row is then
+    within 2 ``tol`` of a kept one.
     """
     X = np.atleast_2d(np.asarray(X, float))
     n = X.shape[0]
     keep = np.ones(n, bool)
     if n < 2 or X.shape[1] == 0:
         return keep
-    from scipy.spatial import cKDTree
     import pandas as pd
+    from scipy.spatial import cKDTree
     Y = np.where(np.isnan(X), 1e9, X)           # NaN columns meet only NaN columns
     keep = ~pd.DataFrame(np.floor(Y / tol) + 0.0).duplicated(keep="first").to_numpy()
-    idx = np.flatnonzero(keep)
-    pairs = cKDTree(Y[idx]).query_pairs(tol, p=np.inf, output_type="ndarray")
-    if not len(pairs):
-        return keep
-    pairs = idx[pairs]
-    pairs = np.sort(pairs, axis=1)
-    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
-    firsts, starts = np.unique(pairs[:, 0], return_index=True)
-    ends = np.append(starts[1:], len(pairs))
-    for i, a, b in zip(firsts, starts, ends):    # only rows that have a neighbour
-        if keep[i]:
-            keep[pairs[a:b, 1]] = False
+    for _ in range(passes):
+        idx = np.flatnonzero(keep)
+        if idx.size < 2:
+            break
+        k = min(neighbours + 1, idx.size)
+        dist, nb = cKDTree(Y[idx]).query(Y[idx], k=k, p=np.inf, distance_upper_bound=np.nextafter(tol, np.inf))
+        dist, nb = np.atleast_2d(dist), np.atleast_2d(nb)
+        src = np.broadcast_to(np.arange(idx.size)[:, None], nb.shape)
+        link = np.isfinite(dist) & (nb < idx.size) & (dist <= tol)
+        a, b = np.minimum(src[link], nb[link]), np.maximum(src[link], nb[link])
+        edge = a < b                             # earlier -> later, positions in idx (row order)
+        a, b = a[edge], b[edge]
+        if not a.size:
+            break
+        sub = np.ones(idx.size, bool)
+        for _ in range(idx.size + 1):            # fixed point of: kept = no kept earlier neighbour
+            hit = np.zeros(idx.size, bool)
+            hit[b[sub[a]]] = True
+            new = ~hit
+            if np.array_equal(new, sub):
+                break
+            sub = new
+        if sub.all():
+            break
+        keep[idx[~sub]] = False
     return keep
 
 

@@ -141,3 +141,18 @@ def test_rank_drops_near_copies_among_infeasible_rows():
     # and without the rule, the infeasible cluster stays (the old behaviour)
     old = rank(df, {"max_overshoot_pct": 10.0}, ["settling_time_s"], dedupe_cols=fam.names, infeasible_tol=0)
     assert len(old) > len(out)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(0, 0.05), st.floats(0, 0.05)), min_size=2, max_size=40))
+def test_near_copies_laws(points):
+    # reference: brute-force Chebyshev distances between all rows
+    X = np.array(points)
+    keep = near_copies(X, 0.01)
+    assert keep[0]
+    K, D = X[keep], X[~keep]
+    dk = np.abs(K[:, None, :] - K[None, :, :]).max(axis=2) + np.eye(len(K)) * 1e9
+    assert (dk > 0.01).all()                                   # kept rows are distinct designs
+    if len(D):
+        assert (np.abs(D[:, None, :] - K[None, :, :]).max(axis=2).min(axis=1) <= 0.02 + 1e-12).all()
+    assert near_copies(K, 0.01).all()                          # idempotent

@@ -165,8 +165,11 @@ def format_record(rec: dict, title: str = "") -> str:
     out.append(f"controller  C(s) = ({format_poly(c['numerator'])}) / ({format_poly(c['denominator'])})")
     out.append(f"            gain {fmt_num(c['gain'])}, zeros [{', '.join(fmt_complex(z) for z in c['zeros'])}], "
                f"poles [{', '.join(fmt_complex(p) for p in c['poles'])}]")
-    for line in (rec.get("pid_forms") or {}).get("text", []):
-        out.append(f"            {line}")
+    for line in (rec.get("pid_forms") or {}).get("text", []):    # the form's formula, then its settings
+        head, _, values = line.partition(": ")
+        out.append(" " * 12 + head)
+        if values:
+            out += textwrap.wrap(values, 100, initial_indent=" " * 22, subsequent_indent=" " * 22)
     for st in rec.get("stages") or []:
         state = "active" if st["active"] else f"INACTIVE ({st['reason']})"
         out.append(f"            stage {st['stage']} {st['role']}: zero -{fmt_num(st['zero_rad_s'])}, "

@@ -153,8 +153,7 @@ def near_copies(X: np.ndarray, tol: float, neighbours: int = 12, passes: int = 8
     The result is the greedy one (walk the rows in order, keep a row unless a kept row
     is within ``tol``), computed without a loop over rows: each row is linked to its
     ``neighbours`` nearest rows within ``tol`` (a k-d tree), and "kept = no kept earlier
-    neighbour" is iterated to its fixed point (exact on the links, since the links
-    point from earlier to later rows). Rows with more near neighbours than
+    neighbour" is solved on the links (:func:`_fixed_point`). Rows with more near neighbours than
     ``neighbours`` are caught by repeating this on the kept rows (``passes``). So the
     first (best ranked) of a cluster is kept, and applying it again drops nothing
     (up to the ``passes`` bound on very dense clusters). Rows sharing a grid cell of
@@ -184,17 +183,34 @@ def near_copies(X: np.ndarray, tol: float, neighbours: int = 12, passes: int = 8
         a, b = a[edge], b[edge]
         if not a.size:
             break
-        sub = np.ones(idx.size, bool)
-        for _ in range(idx.size + 1):            # fixed point of: kept = no kept earlier neighbour
-            hit = np.zeros(idx.size, bool)
-            hit[b[sub[a]]] = True
-            new = ~hit
-            if np.array_equal(new, sub):
-                break
-            sub = new
+        sub = _fixed_point(a, b, idx.size)
         if sub.all():
             break
         keep[idx[~sub]] = False
+    return keep
+
+
+def _fixed_point(a: np.ndarray, b: np.ndarray, n: int, sweeps: int = 30) -> np.ndarray:
+    """kept[j] = no kept i with a link (i, j), i < j: the greedy result on the links.
+
+    Vectorised sweeps from "all kept" settle every row whose longest chain of earlier
+    links is shorter than the sweep count (clusters are shallow); a long chain is
+    finished exactly by one pass in row order over the rows that have earlier links.
+    """
+    keep = np.ones(n, bool)
+    for _ in range(sweeps):
+        hit = np.zeros(n, bool)
+        hit[b[keep[a]]] = True
+        if np.array_equal(~hit, keep):
+            return keep
+        keep = ~hit
+    order = np.argsort(b, kind="stable")
+    a, b = a[order], b[order]
+    js, starts = np.unique(b, return_index=True)
+    ends = np.append(starts[1:], b.size)
+    keep = np.ones(n, bool)
+    for j, s, e in zip(js, starts, ends):        # earlier rows are final when row j is reached
+        keep[j] = not keep[a[s:e]].any()
     return keep
 
 

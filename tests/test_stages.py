@@ -156,3 +156,10 @@ def test_near_copies_laws(points):
     if len(D):
         assert (np.abs(D[:, None, :] - K[None, :, :]).max(axis=2).min(axis=1) <= 0.02 + 1e-12).all()
     assert near_copies(K, 0.01).all()                          # idempotent
+
+
+def test_a_long_chain_of_near_copies_is_resolved_exactly():
+    # a line of designs spaced 0.9 tol: greedy keeps every other one (reference: the sequential walk)
+    X = np.column_stack([0.009 * np.arange(200) + 0.0001, np.zeros(200)])
+    keep = near_copies(X, 0.01)
+    assert keep.tolist() == [i % 2 == 0 for i in range(200)]

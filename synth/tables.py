@@ -1,56 +1,113 @@
 """Plain-text and JSON renderings of ranked candidates (terminal 100 columns wide).
 
-Every row that is shown is first re-evaluated from its parameters with the exact
-certificate (:func:`synth.runs.recheck`), so what the engineer reads is what the
-exact evaluator says about that design.
+Both renderings start from the same JSON row records (:func:`records`): the first
+rows of a table carry the exact certificate (re-evaluated from their parameters by
+:func:`synth.runs.recheck` and stored in the run when the search ended), so what the
+engineer reads is what the exact evaluator says about that design. Rendering needs
+neither pandas nor the evaluator, so a stored table prints at once.
 """
 
 from __future__ import annotations
 
+import math
 import textwrap
 
 import numpy as np
-import pandas as pd
 
 from . import CAUTION
-from .describe import fmt_complex, fmt_num
-from .evaluate import METRICS
+from .describe import fmt_num
 from .requirements import REQUIREMENTS, requirement_value
-from .runs import Run, conflicts, family_of, recheck
+from .runs import Run, TableView, conflicts, family_of
 
 WIDTH = 100
 FALLOUT_LINES = 15
 SHORT = {"settling_time_s": "settling_s", "disturbance_peak": "load_peak", "control_peak": "u_peak",
          "disturbance_iae": "load_iae", "disturbance_settling_time_s": "load_settle_s", "overshoot_pct": "overshoot_%",
          "control_gain_peak": "noise_gain", "sensitivity_peak": "Ms", "complementary_peak": "Mt"}
+# the metric keys of a record (synth.evaluate.METRICS, without importing the evaluator)
+RECORD_METRICS = [
+    "internally_stable", "hidden_modes", "closed_loop_poles", "min_damping", "decay_rate",
+    "settling_time_s", "overshoot_pct", "rise_time_s", "steady_state_error",
+    "disturbance_peak", "disturbance_settling_time_s", "disturbance_steady_state", "disturbance_iae",
+    "control_peak", "gain_margin_db", "gain_margin_low_db", "phase_margin_deg", "delay_margin_s",
+    "crossover_rad_s", "sensitivity_peak", "complementary_peak", "disturbance_gain_peak",
+    "control_gain_peak", "bandwidth_rad_s", "position_constant", "velocity_constant",
+    "acceleration_constant", "ramp_error", "certified",
+]
 
 
-def _zp(run: Run, rows: pd.DataFrame):
+def _zp(run: Run, rows):
     fam = family_of(run)
     gains, zeros, poles = fam.gain_zeros_poles(rows[fam.names].to_numpy(float))
     return gains, zeros, poles
 
 
-def json_rows(run: Run, df: pd.DataFrame, n: int) -> list[dict]:
-    """Row objects, best first: id, rank, feasible, certified, controller and every metric."""
-    rows = recheck(run, df.head(n))
+def _column(values) -> list:
+    """A numeric column as JSON values: NaN -> None, +-inf -> "inf"/"-inf"."""
+    a = np.asarray(values)
+    if a.dtype == bool:
+        return a.tolist()
+    if a.dtype.kind in "iu":
+        return a.tolist()
+    if a.dtype.kind != "f":
+        return [v if isinstance(v, str) else (None if v is None else v) for v in a.tolist()]
+    out = a.tolist()
+    for k in np.flatnonzero(~np.isfinite(a)):
+        x = out[k]
+        out[k] = None if math.isnan(x) else ("inf" if x > 0 else "-inf")
+    return out
+
+
+def _roots(rows_of_roots) -> list:
+    return [[[float(z.real), float(z.imag)] for z in r] for r in rows_of_roots]
+
+
+def records(run: Run, rows) -> list[dict]:
+    """JSON row records of ``rows`` as given (no evaluation here), in their order: id, rank,
+    feasible, knee, controller (gain, zeros, poles) and every metric, then the requirements
+    with value, limit, slack and met. ``closed_loop_poles`` is None for rows that were not
+    re-evaluated with the certificate (the search stores no poles). Built column-wise so
+    that a whole run of tens of thousands of rows converts in about a second."""
     if rows.empty:
         return []
+    n = len(rows)
     gains, zeros, poles = _zp(run, rows)
+    cols: dict[str, list] = {
+        "id": rows["id"].astype(int).tolist(), "rank": rows["rank"].astype(int).tolist(),
+        "feasible": rows["feasible"].astype(bool).tolist(),
+        "knee": rows["knee"].astype(bool).tolist() if "knee" in rows else [False] * n}
+    ctrl = [{"gain": g, "zeros": z, "poles": p}
+            for g, z, p in zip(_column(gains), _roots(zeros), _roots(poles))]
+    for m in RECORD_METRICS:
+        if m == "closed_loop_poles":
+            cols[m] = (_roots([np.asarray(v)[~np.isnan(v)] for v in rows[m]]) if m in rows else [None] * n)
+        elif m in ("internally_stable", "certified"):
+            cols[m] = rows[m].astype(bool).tolist()
+        elif m == "hidden_modes":
+            cols[m] = ["" if v is None else str(v) for v in rows[m].tolist()]
+        else:
+            cols[m] = _column(rows[m].to_numpy(float))
+    reqs = {}
+    for k, lim in run.spec.requirements.items():
+        reqs[k] = (_column(requirement_value(REQUIREMENTS[k], rows)), _column(np.full(n, float(lim))),
+                   _column(rows[f"slack_{k}"].to_numpy(float)), rows[f"met_{k}"].astype(bool).tolist())
     out = []
-    for i, (_, r) in enumerate(rows.iterrows()):
-        obj = {"id": int(r["id"]), "rank": int(r["rank"]), "feasible": bool(r["feasible"]),
-               "knee": bool(r.get("knee", False)),
-               "controller": {"gain": float(gains[i]), "zeros": list(zeros[i]), "poles": list(poles[i])}}
-        for m in METRICS:
-            v = r[m]
-            obj[m] = list(v[~np.isnan(v)]) if m == "closed_loop_poles" else v
-        obj["requirements"] = {
-            k: {"value": float(requirement_value(REQUIREMENTS[k], r.to_dict())), "limit": float(lim),
-                "slack": float(r[f"slack_{k}"]), "met": bool(r[f"met_{k}"])}
-            for k, lim in run.spec.requirements.items()}
+    keys = list(cols)
+    for i in range(n):
+        obj = {"id": cols["id"][i], "rank": cols["rank"][i], "feasible": cols["feasible"][i],
+               "knee": cols["knee"][i], "controller": ctrl[i]}
+        for m in keys[4:]:
+            obj[m] = cols[m][i]
+        obj["requirements"] = {k: {"value": v[0][i], "limit": v[1][i], "slack": v[2][i], "met": v[3][i]}
+                               for k, v in reqs.items()}
         out.append(obj)
     return out
+
+
+def json_rows(run: Run, df, n: int) -> list[dict]:
+    """Row objects of the first ``n`` rows of a ranked table, best first, with certificates."""
+    from .runs import recheck
+    return records(run, recheck(run, df.head(n)))
 
 
 def _short(x: float) -> str:
@@ -65,6 +122,7 @@ def _short(x: float) -> str:
 def _roots_text(roots) -> str:
     out = []
     for z in roots:
+        z = complex(*z) if isinstance(z, (list, tuple)) else complex(z)
         if abs(z.imag) <= 1e-12 * max(1.0, abs(z)):
             out.append(_short(z.real))
         else:
@@ -72,49 +130,48 @@ def _roots_text(roots) -> str:
     return ",".join(out) or "-"
 
 
-def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
+def ranked_text(run: Run, view: TableView) -> str:
     """The ranked table: designs with their objectives, then requirement values with slack."""
-    rows = recheck(run, df.head(n))
-    lines = [f"{run.manifest.get('family', '')} on {run.spec.name}: {len(df)} candidates, "
-             f"{int(df['feasible'].sum()) if len(df) else 0} feasible", ""]
-    if rows.empty:
+    rows = list(view.records)
+    lines = [f"{run.manifest.get('family', '')} on {run.spec.name}: {view.total} candidates, "
+             f"{view.feasible} feasible", ""]
+    if not rows:
         return "\n".join(lines + ["(no candidates)"])
     objs = list(run.spec.objectives)
-    gains, zeros, poles = _zp(run, rows)
     head = f"{'rank':>5} {'id':>7}  {'gain':>9}  {'zeros':<17} {'poles':<17}"
     for o in objs:
         head += f" {SHORT.get(o, o)[:11]:>11}"
     lines.append(head)
-    for i, (_, r) in enumerate(rows.iterrows()):
+    for r in rows:
         mark = "*" if r.get("knee", False) else (" " if r["feasible"] else "x")
         cert = "" if (r["certified"] or not r["feasible"]) else " (uncertified)"
-        z, p = _roots_text(zeros[i]), _roots_text(poles[i])
-        line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(gains[i], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
+        c = r["controller"]
+        z, p = _roots_text(c["zeros"]), _roots_text(c["poles"])
+        line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(c['gain'], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
         for o in objs:
             line += f" {fmt_num(r[o], 4):>11}"
         lines.append(line + cert)
     lines.append("   * knee of the front   x infeasible (ranked by total normalised violation)")
     reqs = dict(run.spec.requirements)
     if reqs:
-        k = min(len(rows), 5)
+        first = rows[:5]
         lines += ["", "requirement values (slack) of the first rows"]
         head = f"{'requirement':<30}{'limit':>9}"
-        for _, r in rows.head(k).iterrows():
+        for r in first:
             head += f"{'#' + str(int(r['id'])):>12}"
         lines.append(head)
         for key, lim in reqs.items():
-            req = REQUIREMENTS[key]
             line = f"{key[:30]:<30}{fmt_num(lim, 4):>9}"
-            for _, r in rows.head(k).iterrows():
-                v = float(requirement_value(req, r.to_dict()))
-                flag = "" if r[f"met_{key}"] else "!"
-                line += f"{fmt_num(v, 4) + flag:>12}"
+            for r in first:
+                q = r["requirements"][key]
+                flag = "" if q["met"] else "!"
+                line += f"{fmt_num(q['value'], 4) + flag:>12}"
             lines.append(line)
         lines.append("   ! requirement not met; slack per requirement: 'synth show RUN ID'")
     return "\n".join(lines)
 
 
-def design_summary(run: Run, df: pd.DataFrame, top: int) -> str:
+def design_summary(run: Run, view: TableView) -> str:
     """What a design run found: bounds applied, counts, the table, conflicts when infeasible."""
     m = run.manifest
     lines = [f"run folder: {run.folder}"]
@@ -127,8 +184,8 @@ def design_summary(run: Run, df: pd.DataFrame, top: int) -> str:
     for note in m.get("infeasible_by_construction", []):
         lines += textwrap.wrap("CANNOT BE MET: " + note, WIDTH, subsequent_indent="       ")
     lines.append("")
-    lines.append(ranked_text(run, df, top))
-    if len(df) == 0 or not df["feasible"].any():
+    lines.append(ranked_text(run, view))
+    if view.total == 0 or not view.feasible:
         lines += ["", "No candidate meets all requirements. The rows above violate the least."]
         lines.append("Requirements in conflict (best value reached when that requirement alone is dropped):")
         for c in conflicts(run):
@@ -148,7 +205,7 @@ def fundamental_limits(run: Run) -> list[str]:
     return plant_limits(run.spec.plant, dict(run.spec.requirements))
 
 
-def fallout_text(before: pd.DataFrame, after: pd.DataFrame, requirements: dict) -> str:
+def fallout_text(before, after, requirements: dict) -> str:
     """Which former front members are no longer feasible under the new requirements, and why."""
     if before.empty:
         return "the archive is empty"

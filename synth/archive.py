@@ -98,6 +98,9 @@ class RunStore:
                 raise ArchiveError(f"{folder}: the output folder exists and is not empty; "
                                    "expected a new or empty folder (use --resume to continue a run)")
             atomic_write_text(folder / "spec.toml", spec_text)
+            # created here, not by SQLite (which would use 0644): the umask decides, as for any
+            # file; SQLite gives its -wal and -shm files the database file's mode
+            os.close(os.open(store.db_path, os.O_RDWR | os.O_CREAT, 0o666))
         except OSError as e:
             raise ArchiveError(f"{folder}: cannot create the run folder ({e.strerror or e}); "
                                "expected a writable location") from None

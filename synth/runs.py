@@ -198,7 +198,6 @@ def _stored_ranked(run: Run):
 
 def store_ranking(run: Run, shown: int = SHOWN_STORED) -> None:
     """Rank the run now and store the ranking and the certified records of the first rows."""
-    from .describe import jsonable
     from .rank import _is_computed
     from .tables import records
     df = compute_ranked(run)
@@ -206,7 +205,7 @@ def store_ranking(run: Run, shown: int = SHOWN_STORED) -> None:
     if df.empty:
         import pandas as pd
         df = pd.DataFrame({"id": np.zeros(0, dtype=np.int64), "rank": np.zeros(0, dtype=np.int64)})
-    recs = jsonable(records(run, recheck(run, df.head(shown)))) if len(df) else []
+    recs = records(run, recheck(run, df.head(shown))) if len(df) else []
     meta = {"rows": int(len(df)), "feasible": int(df["feasible"].sum()) if "feasible" in df else 0,
             "shown": len(recs)}
     run.store.save_ranking(df[cols], recs, meta)
@@ -243,7 +242,6 @@ def table_view(run: Run, n: int | None = None, sort: str | None = None) -> Table
 def _records(run: Run, df, stored: dict, certify: bool) -> Iterator[dict]:
     """Records of ``df``'s rows in order: stored certified ones where available, otherwise
     certified now (``certify``) or built from the stored screening metrics."""
-    from .describe import jsonable
     from .tables import records
     ids = df["id"].to_numpy()
     have = np.fromiter((i in stored for i in ids), bool, len(ids))
@@ -256,7 +254,7 @@ def _records(run: Run, df, stored: dict, certify: bool) -> Iterator[dict]:
             yield from (stored[k] for k in ids[i:j])
         else:
             part = df.iloc[i:j]
-            yield from jsonable(records(run, recheck(run, part) if certify else part))
+            yield from records(run, recheck(run, part) if certify else part)   # JSON-ready already
         i = j
 
 

@@ -201,11 +201,12 @@ class Design:
         return list(self.run.spec.warnings)
 
     # -- tables -----------------------------------------------------------------
-    def view(self, n: int | None = 10, sort: str | None = None):
-        """The table of the first ``n`` rows (every row when None) as a :class:`synth.runs.TableView`."""
+    def view(self, n: int | None = 10, sort: str | None = None, text: bool = False):
+        """The table of the first ``n`` rows (every row when None) as a :class:`synth.runs.TableView`;
+        with ``text`` its records are JSON texts."""
         from .runs import table_view
         try:
-            return table_view(self.run, n, sort)
+            return table_view(self.run, n, sort, text)
         except KeyError:
             raise SynthError(f"sort: unknown metric {sort!r}; expected a metric column such as "
                              "settling_time_s") from None

@@ -246,12 +246,19 @@ class RunStore:
         finally:
             con.close()
 
-    def shown_records(self, n: int | None = None) -> list[dict]:
-        """The first ``n`` stored records (all stored when None), best first."""
+    def shown_records(self, n: int | None = None, raw: bool = False) -> list:
+        """The first ``n`` stored records (all stored when None), best first; their JSON texts
+        with ``raw``."""
+        return [r if raw else json.loads(r) for r in self._shown("record", n)]
+
+    def shown_ids(self) -> list[int]:
+        return [int(i) for i in self._shown("id", None)]
+
+    def _shown(self, col: str, n: int | None) -> list:
         con = sqlite3.connect(self.db_path, timeout=30.0)
         try:
-            q = "SELECT record FROM shown ORDER BY position" + ("" if n is None else f" LIMIT {int(n)}")
-            return [json.loads(r[0]) for r in con.execute(q)]
+            q = f"SELECT {col} FROM shown ORDER BY position" + ("" if n is None else f" LIMIT {int(n)}")
+            return [r[0] for r in con.execute(q)]
         except sqlite3.OperationalError:
             return []
         finally:

@@ -58,13 +58,14 @@ def _print_json(obj) -> None:
 
 
 def _stream_json_rows(rows) -> None:
-    """A JSON array written row by row (one row object per line), never held whole in memory."""
+    """A JSON array written row by row (one row object per line), never held whole in memory;
+    ``rows`` are row objects or their JSON texts."""
     out = sys.stdout
     first = True
     out.write("[")
     for r in rows:
         out.write("\n" if first else ",\n")
-        out.write(json.dumps(r, allow_nan=False))
+        out.write(r if isinstance(r, str) else json.dumps(r, allow_nan=False))
         first = False
     out.write("\n]\n" if not first else "]\n")
     out.flush()
@@ -180,7 +181,7 @@ def table(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
     Reads the ranking stored when the search ended; --all re-evaluates nothing."""
     d = _open(run_dir)
     n = None if all_rows else top
-    view = _call(d.view, n, sort)
+    view = _call(d.view, n, sort, as_json)
     if not view.stored:
         typer.echo(f"note: {run_dir} has no stored ranking for all its candidates (a search still "
                    "running or interrupted); ranked now", err=True)

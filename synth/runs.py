@@ -211,18 +211,19 @@ def store_ranking(run: Run, shown: int = SHOWN_STORED) -> None:
     run.store.save_ranking(df[cols], recs, meta)
 
 
-def table_view(run: Run, n: int | None = None, sort: str | None = None) -> TableView:
+def table_view(run: Run, n: int | None = None, sort: str | None = None, text: bool = False) -> TableView:
     """The rows a table shows (``n`` of them, every row when None), best first, as JSON records.
 
     The first rows come with their exact certificate (stored when the search ended, or
     computed now for rows that were not stored); with ``n=None`` the rows past those carry
     the stored screening metrics, nothing is re-evaluated, and the records are streamed.
     ``sort`` orders the feasible rows by a metric column (ascending). Raises KeyError for
-    an unknown sort column.
+    an unknown sort column. With ``text`` the records come as their JSON texts (what
+    ``json.dumps`` would write), built without per-row dictionaries.
     """
     meta = run.store.ranking_meta()
     if meta is not None and sort is None and n is not None and n <= meta["shown"]:
-        recs = run.store.shown_records(n)        # the quick path: no pandas, no evaluation
+        recs = run.store.shown_records(n, raw=text)   # the quick path: no pandas, no evaluation
         return TableView(meta["rows"], meta["feasible"], recs)
     df = ranked(run)
     if sort is not None:
@@ -233,16 +234,18 @@ def table_view(run: Run, n: int | None = None, sort: str | None = None) -> Table
         df = pd.concat([feas, df[~df["feasible"]]])
     total = len(df)
     nfeas = int(df["feasible"].sum()) if total else 0
-    stored = {r["id"]: r for r in run.store.shown_records()} if meta is not None else {}
+    stored = dict(zip(run.store.shown_ids(), run.store.shown_records(raw=text))) if meta is not None else {}
     if n is not None:
-        return TableView(total, nfeas, list(_records(run, df.head(n), stored, certify=True)), meta is not None)
-    return TableView(total, nfeas, _records(run, df, stored, certify=False), meta is not None)
+        return TableView(total, nfeas, list(_records(run, df.head(n), stored, True, text)), meta is not None)
+    return TableView(total, nfeas, _records(run, df, stored, False, text), meta is not None)
 
 
-def _records(run: Run, df, stored: dict, certify: bool) -> Iterator[dict]:
+def _records(run: Run, df, stored: dict, certify: bool, text: bool = False) -> Iterator:
     """Records of ``df``'s rows in order: stored certified ones where available, otherwise
-    certified now (``certify``) or built from the stored screening metrics."""
-    from .tables import records
+    certified now (``certify``) or built from the stored screening metrics; as JSON texts
+    with ``text``."""
+    from .tables import records, records_json
+    build = records_json if text else records
     ids = df["id"].to_numpy()
     have = np.fromiter((i in stored for i in ids), bool, len(ids))
     i = 0
@@ -254,7 +257,7 @@ def _records(run: Run, df, stored: dict, certify: bool) -> Iterator[dict]:
             yield from (stored[k] for k in ids[i:j])
         else:
             part = df.iloc[i:j]
-            yield from records(run, recheck(run, part) if certify else part)   # JSON-ready already
+            yield from build(run, recheck(run, part) if certify else part)   # JSON-ready already
         i = j
 
 

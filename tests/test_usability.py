@@ -391,3 +391,14 @@ def test_record_metrics_follow_the_evaluator():
     from synth.evaluate import METRICS
     from synth.tables import RECORD_METRICS
     assert RECORD_METRICS == list(METRICS)
+
+
+def test_json_texts_equal_json_dumps_of_the_records(api_run):
+    """The column-wise JSON writer of `table --json --all` writes what json.dumps writes."""
+    from synth.runs import recheck
+    from synth.tables import records, records_json
+    d, out = api_run
+    run = open_run(out)
+    df = ranked(run)
+    for rows in (df, recheck(run, df.head(7))):
+        assert records_json(run, rows) == [json.dumps(r, allow_nan=False) for r in records(run, rows)]

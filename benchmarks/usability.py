@@ -21,6 +21,7 @@ import argparse
 import datetime
 import os
 import platform
+import resource
 import sqlite3
 import statistics
 import subprocess
@@ -58,15 +59,19 @@ def env() -> dict:
     return e
 
 
-def timed(cmd: list[str], repeat: int, out_path: str = os.devnull) -> float:
-    """Median wall time of ``repeat`` fresh processes, stdout to ``out_path``."""
-    times = []
+def timed(cmd: list[str], repeat: int, out_path: str = os.devnull) -> tuple[float, float]:
+    """Median wall time and median CPU time (user + system) of ``repeat`` fresh processes,
+    stdout to ``out_path``. The CPU time is the steadier figure on a shared, loaded machine."""
+    walls, cpus = [], []
     for _ in range(repeat):
         with open(out_path, "w") as out:
+            r0 = resource.getrusage(resource.RUSAGE_CHILDREN)
             t0 = time.perf_counter()
             subprocess.run(cmd, env=env(), cwd=ROOT, stdout=out, stderr=subprocess.DEVNULL, check=True)
-            times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+            walls.append(time.perf_counter() - t0)
+            r1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+            cpus.append((r1.ru_utime - r0.ru_utime) + (r1.ru_stime - r0.ru_stime))
+    return statistics.median(walls), statistics.median(cpus)
 
 
 def synth_cmd(*args) -> list[str]:
@@ -97,7 +102,7 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=None)
     a = ap.parse_args()
     repeat = a.repeat or (3 if a.quick else 5)
-    budget = 6000 if a.quick else 48000
+    budget = 6000 if a.quick else 56000
     folder = a.run or Path(tempfile.gettempdir()) / f"synth-usability-{budget}"
     n = ensure_run(folder, budget)
 
@@ -112,20 +117,30 @@ def main() -> None:
         t_all = timed(synth_cmd("table", folder, "--json", "--all"), repeat, str(all_json))
         size_mb = all_json.stat().st_size / 1e6
 
+    def verdict(wall_ok, cpu_ok):
+        return ("met" if wall_ok else "NOT met (wall)") + (", met (CPU)" if cpu_ok else ", NOT met (CPU)")
+
     rows = [
-        ("`synth --help`", f"{t_help:.3f} s", f"{t_help / t_bare:.2f}x a bare typer app ({t_bare:.3f} s)",
-         "within 1.5x", "met" if t_help <= 1.5 * t_bare else "NOT met"),
-        ("`synth table RUN --top 10`", f"{t_top:.3f} s", "", "under 0.5 s", "met" if t_top < 0.5 else "NOT met"),
-        ("`synth table RUN --json --all`", f"{t_all:.3f} s",
-         f"{t_all / t_read:.2f}x reading the archive into pandas ({t_read:.3f} s); {size_mb:.0f} MB",
-         "within 3x", "met" if t_all <= 3 * t_read else "NOT met"),
+        ("`synth --help`", f"{t_help[0]:.3f} s", f"{t_help[1]:.3f} s",
+         f"{t_help[0] / t_bare[0]:.2f}x (CPU {t_help[1] / t_bare[1]:.2f}x) a bare two-command typer app "
+         f"({t_bare[0]:.3f} s, CPU {t_bare[1]:.3f} s)", "within 1.5x",
+         verdict(t_help[0] <= 1.5 * t_bare[0], t_help[1] <= 1.5 * t_bare[1])),
+        ("`synth table RUN --top 10`", f"{t_top[0]:.3f} s", f"{t_top[1]:.3f} s", "", "under 0.5 s",
+         verdict(t_top[0] < 0.5, t_top[1] < 0.5)),
+        ("`synth table RUN --json --all`", f"{t_all[0]:.3f} s", f"{t_all[1]:.3f} s",
+         f"{t_all[0] / t_read[0]:.2f}x (CPU {t_all[1] / t_read[1]:.2f}x) reading the archive into pandas "
+         f"({t_read[0]:.3f} s, CPU {t_read[1]:.3f} s); {size_mb:.0f} MB of JSON", "within 3x",
+         verdict(t_all[0] <= 3 * t_read[0], t_all[1] <= 3 * t_read[1])),
     ]
     lines = [f"# Usability timings{' (quick)' if a.quick else ''}", "",
              f"Run of {n:,} candidates (invented maglev carriage spec, budget {budget:,}); "
              f"median of {repeat} fresh processes each.", "",
-             "| command | wall time | comparison | target | |", "| --- | --- | --- | --- | --- |"]
+             "| command | wall time | CPU time | comparison | target | verdict |",
+             "| --- | --- | --- | --- | --- | --- |"]
     lines += [f"| {' | '.join(r)} |" for r in rows]
-    lines += ["", f"Machine: {cpu_model()}, {os.cpu_count()} cores shared with other work; "
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    lines += ["", f"Machine: {cpu_model()}, {os.cpu_count()} cores shared with other work "
+              f"(load average {load:.1f} at the end); "
               f"Python {platform.python_version()}; {datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.",
               f"Command: `python benchmarks/usability.py{' --quick' if a.quick else ''}`", ""]
     text = "\n".join(lines)

@@ -163,15 +163,22 @@ class RunStore:
         finally:
             con.close()
 
-    def load(self, ids=None) -> "pd.DataFrame":
-        """Every stored candidate (or those of ``ids``), in id order, with boolean columns restored."""
+    def load(self, ids=None, columns=None) -> "pd.DataFrame":
+        """Every stored candidate (or those of ``ids``), in id order, with boolean columns restored;
+        only the stored ones of ``columns`` (and id) when given."""
         import pandas as pd
         if not self.db_path.exists():
             return pd.DataFrame()
         con = sqlite3.connect(self.db_path, timeout=30.0)
         try:
+            if columns is not None:
+                have = [r[1] for r in con.execute("PRAGMA table_info(candidates)")]
+                want = set(columns) | {"id"}
+                what = ", ".join(f'"{c}"' for c in have if c in want) or "*"
+            else:
+                what = "*"
             if ids is None:
-                df = pd.read_sql("SELECT * FROM candidates ORDER BY id", con)
+                df = pd.read_sql(f"SELECT {what} FROM candidates ORDER BY id", con)
             else:
                 ids = [int(i) for i in ids]
                 df = pd.read_sql(f"SELECT * FROM candidates WHERE id IN ({','.join('?' * len(ids))}) "

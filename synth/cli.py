@@ -106,9 +106,10 @@ def check(spec_path: Path = typer.Argument(..., metavar="SPEC", help="requiremen
 
 # ------------------------------------------------------------------ synthesis
 def _progress(quiet: bool, settings=None):
+    """The progress display; ``settings`` (search settings, or their dict) give the limits shown."""
     from .progress import ProgressPrinter
-    return ProgressPrinter(enabled=not quiet, budget=getattr(settings, "budget", None),
-                           time_limit_s=getattr(settings, "time_limit_s", None))
+    get = settings.get if isinstance(settings, dict) else (lambda k: getattr(settings, k, None))
+    return ProgressPrinter(enabled=not quiet, budget=get("budget"), time_limit_s=get("time_limit_s"))
 
 
 def _finish(d, as_json: bool, top: int, report: bool) -> None:
@@ -148,10 +149,8 @@ def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirem
     if resume is not None:
         if spec_path is not None:
             fail("design: give either a SPEC file or --resume RUN, not both")
-        d = _open(resume)
-        settings = d.run.manifest.get("settings") or {}
-        printer_settings = type("S", (), settings)()
-        d = _search(lambda pr: api.resume(resume, on_progress=pr), quiet, printer_settings)
+        settings = _open(resume).run.manifest.get("settings") or {}
+        d = _search(lambda pr: api.resume(resume, on_progress=pr), quiet, settings)
     elif spec_path is None:
         fail("design: give a SPEC file, or --resume RUN to continue a run")
     else:
@@ -233,12 +232,13 @@ def tighten(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder 
     """A new run with changed requirements: re-rank the old archive at once (no re-evaluation),
     say which former front members fall out and why, then continue the search warm-started."""
     from .runs import settings_from
+    from .spec import SpecError
     old = _open(run_dir)
     changes = _parse_set(sets)
     quiet = quiet or as_json
     try:
         new_spec = old.spec.tighten(changes)
-    except Exception as e:          # SpecError: the message names the key and the expected range
+    except SpecError as e:          # the message names the key and the expected range
         fail(str(e))
     settings = settings_from(new_spec, budget, time_limit, None)
     say = None if as_json else (lambda msg: typer.echo(msg, err=True))

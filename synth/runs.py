@@ -176,13 +176,14 @@ def ranked(run: Run, requirements: dict | None = None):
     return compute_ranked(run, requirements)
 
 
-def _stored_ranked(run: Run):
+def _stored_ranked(run: Run, columns=None):
+    """The stored ranking joined to the stored candidates (only ``columns`` of them when given)."""
     import pandas as pd
     from .rank import _is_computed
     ranking = run.store.load_ranking()
     if ranking is None:
         return None
-    df = run.store.load()
+    df = run.store.load(columns=columns)
     if df.empty:
         return df
     base = df[[c for c in df.columns if not _is_computed(c)]]
@@ -225,7 +226,12 @@ def table_view(run: Run, n: int | None = None, sort: str | None = None, text: bo
     if meta is not None and sort is None and n is not None and n <= meta["shown"]:
         recs = run.store.shown_records(n, raw=text)   # the quick path: no pandas, no evaluation
         return TableView(meta["rows"], meta["feasible"], recs)
-    df = ranked(run)
+    df = None
+    if n is None and meta is not None:     # every row: read only the columns a record shows
+        from .tables import RECORD_METRICS
+        df = _stored_ranked(run, columns=["id", *family_of(run).names, *RECORD_METRICS, sort])
+    if df is None:
+        df = ranked(run)
     if sort is not None:
         import pandas as pd
         if sort not in df.columns:

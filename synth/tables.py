@@ -39,9 +39,18 @@ RECORD_METRICS = [
 
 
 def _zp(run: Run, rows):
+    """Gains (N,) and zeros and poles of each row's controller: (N, k) complex arrays for a
+    lead-lag family (the same roots as Family.gain_zeros_poles, without its per-row loop),
+    lists of arrays otherwise."""
     fam = family_of(run)
-    gains, zeros, poles = fam.gain_zeros_poles(rows[fam.names].to_numpy(float))
-    return gains, zeros, poles
+    p = rows[fam.names].to_numpy(float)
+    if fam.kind == "lead-lag" and len(p):
+        zc = [c for _, c, _ in fam.pairs]
+        pc = [c for _, _, c in fam.pairs]
+        zeros = -(10.0 ** p[:, zc]).astype(complex)          # as Family.gain_zeros_poles, -0j included
+        poles = np.hstack([-(10.0 ** p[:, pc]), np.zeros((len(p), int(fam.integrator)))]).astype(complex)
+        return fam.sign * 10.0 ** p[:, 0], zeros, poles
+    return fam.gain_zeros_poles(p)
 
 
 def _column(values) -> list:
@@ -129,13 +138,14 @@ def _json_column(values) -> list[str]:
 
 def _json_roots(rows_of_roots) -> list[str]:
     """Lists of roots as JSON texts ``[[re, im], ...]`` (column-wise when every row has as many)."""
-    sizes = {len(r) for r in rows_of_roots}
+    sizes = {rows_of_roots.shape[1]} if isinstance(rows_of_roots, np.ndarray) else {len(r) for r in rows_of_roots}
     if len(sizes) != 1:
         return [json.dumps(r) for r in _roots(rows_of_roots)]
     k = sizes.pop()
     if k == 0:
         return ["[]"] * len(rows_of_roots)
-    z = np.asarray([np.asarray(r, dtype=complex) for r in rows_of_roots]).reshape(len(rows_of_roots), k)
+    z = rows_of_roots if isinstance(rows_of_roots, np.ndarray) else \
+        np.asarray([np.asarray(r, dtype=complex) for r in rows_of_roots]).reshape(len(rows_of_roots), k)
     parts = []
     for j in range(k):
         parts += [itertools.repeat("[" if j == 0 else ", "), itertools.repeat("["),

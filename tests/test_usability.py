@@ -261,6 +261,8 @@ def test_two_concurrent_writers(tmp_path):
     first = spawn("design", spec, "--out", out, "--quiet", "--time-limit", 8)
     try:
         wait_for_rows(out)
+        reader = cli("table", out, "--json", "--top", 3)          # readers work during the run
+        assert reader.exit_code == 0 and json.loads(reader.stdout)
         second = spawn("design", "--resume", out, "--quiet")
         _, err = second.communicate(timeout=120)
         assert second.returncode == 2, err

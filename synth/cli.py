@@ -180,7 +180,10 @@ def table(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
     Reads the ranking stored when the search ended; --all re-evaluates nothing."""
     d = _open(run_dir)
     n = None if all_rows else top
-    view = _call(d.view, n, sort, as_json)
+    try:
+        view = d.view(n, sort, as_json)
+    except _api().SynthError as e:
+        fail(f"--{e}" if str(e).startswith("sort:") else str(e))
     if not view.stored:
         typer.echo(f"note: {run_dir} has no stored ranking for all its candidates (a search still "
                    "running or interrupted); ranked now", err=True)

@@ -404,3 +404,29 @@ def test_json_texts_equal_json_dumps_of_the_records(api_run):
     df = ranked(run)
     for rows in (df, recheck(run, df.head(7))):
         assert records_json(run, rows) == [json.dumps(r, allow_nan=False) for r in records(run, rows)]
+
+
+from hypothesis import given, settings as hsettings, strategies as st  # noqa: E402
+
+_floats = st.floats(allow_nan=True, allow_infinity=True, width=64)
+
+
+@hsettings(max_examples=200, deadline=None)
+@given(st.lists(_floats, min_size=0, max_size=40))
+def test_json_column_writes_what_json_dumps_writes(xs):
+    """Law: for every float column (NaN, +-inf, -0.0, subnormals included) the column-wise JSON
+    texts equal json.dumps of the JSON values (Python's json module is the reference)."""
+    from synth.tables import _column, _json_column
+    a = np.array(xs, dtype=float)
+    assert _json_column(a) == [json.dumps(v, allow_nan=False) for v in _column(a)]
+
+
+@hsettings(max_examples=100, deadline=None)
+@given(st.integers(1, 6), st.integers(0, 3), st.data())
+def test_json_roots_writes_what_json_dumps_writes(n, k, data):
+    from synth.tables import _json_roots, _roots
+    finite = st.floats(allow_nan=False, allow_infinity=False, width=64)
+    z = np.array([[complex(data.draw(finite), data.draw(finite)) for _ in range(k)] for _ in range(n)],
+                 dtype=complex).reshape(n, k)
+    want = [json.dumps(r) for r in _roots(z)]
+    assert _json_roots(z) == want and _json_roots(list(z)) == want

@@ -1,24 +1,31 @@
-"""Command-line interface (typer). Thin: parse arguments, call the library, print.
+"""Command-line interface (typer). Thin: parse arguments, call :mod:`synth.api`, print.
 
 Bad input exits with status 2 and one message naming the file or option, never a
-traceback.
+traceback; Ctrl-C exits with status 130 and one line (a run folder being written
+stays resumable). Nothing heavy is imported before a command runs, so ``--help``
+is quick.
 """
 
 from __future__ import annotations
 
 import json
+import signal
 import sys
 from pathlib import Path
 
-import numpy as np
-import typer
-
-from .describe import check_controller, format_record, jsonable
-from .expr import ExpressionError, parse_rational
-from .spec import SpecError, load_spec
+try:
+    import typer
+except KeyboardInterrupt:             # Ctrl-C while the interpreter starts: one line, no traceback
+    sys.stderr.write("interrupted\n")
+    sys.exit(130)
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="synth: constraint-driven compensator synthesis for SISO feedback loops.")
+
+
+class Interrupted(BaseException):
+    """Ctrl-C (SIGINT). A BaseException of our own, so that no library turns it into
+    another exit status on the way up; ``finally`` blocks still run (locks released)."""
 
 
 @app.callback()
@@ -32,16 +39,48 @@ def fail(message: str) -> None:
     raise typer.Exit(2)
 
 
-def _load(spec_path: Path):
+def _api():
+    from . import api
+    return api
+
+
+def _call(fn, *args, **kwargs):
+    """Call an API function; its SynthError becomes a user-facing exit 2."""
+    api = _api()
     try:
-        spec = load_spec(spec_path)
-    except SpecError as e:
+        return fn(*args, **kwargs)
+    except api.SynthError as e:
         fail(str(e))
+
+
+def _print_json(obj) -> None:
+    typer.echo(json.dumps(obj, indent=2))
+
+
+def _stream_json_rows(rows) -> None:
+    """A JSON array written row by row (one row object per line), never held whole in memory;
+    ``rows`` are row objects or their JSON texts."""
+    out = sys.stdout
+    first = True
+    out.write("[")
+    for r in rows:
+        out.write("\n" if first else ",\n")
+        out.write(r if isinstance(r, str) else json.dumps(r, allow_nan=False))
+        first = False
+    out.write("\n]\n" if not first else "]\n")
+    out.flush()
+
+
+def _open(run_dir: Path):
+    return _call(_api().open_run, run_dir)
+
+
+def _warn(spec) -> None:
     for w in spec.warnings:
         typer.echo(f"warning: {w}", err=True)
-    return spec
 
 
+# ------------------------------------------------------------------ check
 @app.command()
 def check(spec_path: Path = typer.Argument(..., metavar="SPEC", help="requirements file (TOML)"),
           controller: str = typer.Option(..., "--controller", "-c",
@@ -50,96 +89,47 @@ def check(spec_path: Path = typer.Argument(..., metavar="SPEC", help="requiremen
     """Evaluate one compensator against a requirements file: every metric, every requirement
     with value, limit and slack, the closed-loop poles, the exact certificate and hidden modes.
     Exit status 0 whether or not the requirements are met; 2 for bad input."""
-    spec = _load(spec_path)
+    api = _api()
+    spec, _ = _call(api.read_spec, spec_path)
+    _warn(spec)
     try:
-        c = parse_rational(controller)
-    except ExpressionError as e:
-        fail(f"--controller: {e}")
-    if c.delay:
-        fail("--controller: the compensator must be rational (no exp(...) dead time)")
-    if not c.is_proper:
-        fail(f"--controller: the compensator {controller!r} is improper (numerator degree "
-             f"{c.num.size - 1} > denominator degree {c.den.size - 1}); add a filter pole")
-    if not any(c.num):
-        fail("--controller: the compensator is identically zero")
-    rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
+        c = api.parse_controller(controller)
+    except api.SynthError as e:
+        fail(f"--{e}")
     if as_json:
-        rec = dict(rec, spec=spec.name, source=str(spec_path), warnings=list(spec.warnings))
-        typer.echo(json.dumps(jsonable(rec), indent=2))
+        _print_json(_call(api.check, spec_path, c))
     else:
+        from .describe import format_record
+        rec = _call(api.check_record, spec, c)
         typer.echo(format_record(rec, title=f"check: {spec.name} ({spec_path})"))
 
 
-
 # ------------------------------------------------------------------ synthesis
-def _progress_printer(enabled: bool):
-    """Progress on stderr: evaluations, feasible found, best objective values so far."""
-    last = [0.0]
-
-    def show(p):
-        if not enabled:
-            return
-        now = p.elapsed_s
-        if now - last[0] < 0.5 and p.phase != "done":
-            return
-        last[0] = now
-        best = ", ".join(f"{k}={v:.4g}" for k, v in p.best.items())
-        typer.echo(f"\r[{p.phase:>6}] {p.evaluated:>8} evaluated  {p.feasible:>6} feasible  "
-                   f"{now:6.1f} s  {best}"[:160], err=True, nl=False)
-    return show
+def _progress(quiet: bool, settings=None):
+    """The progress display; ``settings`` (search settings, or their dict) give the limits shown."""
+    from .progress import ProgressPrinter
+    get = settings.get if isinstance(settings, dict) else (lambda k: getattr(settings, k, None))
+    return ProgressPrinter(enabled=not quiet, budget=get("budget"), time_limit_s=get("time_limit_s"))
 
 
-def _open(run_dir: Path):
-    from .archive import ArchiveError
-    from .runs import open_run
-    try:
-        return open_run(run_dir)
-    except ArchiveError as e:
-        fail(str(e))
-
-
-def _candidate(run_dir: Path, cid: int):
-    """(run, ranked row, controller, exact check record) of one stored candidate."""
-    from .archive import ArchiveError
-    from .runs import controller_of, find_row, ranked
-    run = _open(run_dir)
-    try:
-        row = find_row(run, ranked(run), cid)
-    except ArchiveError as e:
-        fail(str(e))
-    c = controller_of(run, row)
-    spec = run.spec
-    rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
-    from .describe import structure_details
-    from .runs import family_of
-    fam = family_of(run)
-    rec.update(structure_details(fam, [float(row[n]) for n in fam.names], rec))    # PID forms, stage activity
-    return run, row, c, rec
-
-
-def _finish_design(run, as_json: bool, top: int, report: bool) -> None:
-    from .runs import ranked
-    from .tables import design_summary, json_rows
-    df = ranked(run)
+def _finish(d, as_json: bool, top: int, report: bool) -> None:
+    """What every search command prints at the end: the summary (or JSON), then the report."""
     if as_json:
-        typer.echo(json.dumps(jsonable({"run": str(run.folder), "rows": json_rows(run, df, top)}), indent=2))
+        _print_json({"run": str(d.folder), "rows": d.rows(top)})
     else:
-        typer.echo("", err=True)
-        typer.echo(design_summary(run, df, top))
+        typer.echo(d.summary(top))
     if report:
-        _write_report(run, [], None, None)
+        path = _call(d.report)
+        typer.echo(f"report: {path}", err=True)
 
 
-def _write_report(run, ids, out, png):
-    from .archive import ArchiveError
-    from .report import ReportError, build_report
+def _search(start, quiet: bool, settings=None):
+    """Run one search call with a progress printer; the printer is closed however it ends."""
+    printer = _progress(quiet, settings)
     try:
-        path = build_report(run, ids, out, png)
-    except (ReportError, ArchiveError) as e:
-        fail(f"--report: {e}")
-    typer.echo(f"report: {path}", err=True)
+        return _call(start, printer)
+    finally:
+        printer.close()
 
 
 @app.command()
@@ -151,23 +141,33 @@ def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirem
            resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder"),
            top: int = typer.Option(10, "--top", min=1, help="rows to print"),
            report: bool = typer.Option(False, "--report", help="write the design report at the end"),
+           quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress display"),
            as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON")) -> None:
     """Search the spec's compensator family, store every candidate, print the ranked table."""
-    from .archive import ArchiveError
-    from .runs import run_search, settings_from
-    if resume is None and spec_path is None:
+    api = _api()
+    quiet = quiet or as_json
+    if resume is not None:
+        if spec_path is not None:
+            fail("design: give either a SPEC file or --resume RUN, not both")
+        settings = _open(resume).run.manifest.get("settings") or {}
+        d = _search(lambda pr: api.resume(resume, on_progress=pr), quiet, settings)
+    elif spec_path is None:
         fail("design: give a SPEC file, or --resume RUN to continue a run")
-    try:
-        if resume is not None:
-            run = run_search(None, "", resume=resume, on_progress=_progress_printer(not as_json))
-        else:
-            spec = _load(spec_path)
-            text = spec_path.read_text(encoding="utf-8")
-            run = run_search(spec, text, out=out, settings=settings_from(spec, budget, time_limit, seed),
-                             on_progress=_progress_printer(not as_json))
-    except ArchiveError as e:
-        fail(str(e))
-    _finish_design(run, as_json, top, report)
+    else:
+        d = _design_one(spec_path, budget, time_limit, seed, out, quiet)
+    _finish(d, as_json, top, report)
+
+
+def _design_one(spec_path: Path, budget, time_limit, seed, out, quiet: bool):
+    """One spec: validate, search into ``out``, return the Design (the unit a multi-spec
+    or cluster design repeats)."""
+    from .runs import settings_from
+    api = _api()
+    spec, text = _call(api.read_spec, spec_path)
+    _warn(spec)
+    settings = settings_from(spec, budget, time_limit, seed)
+    return _search(lambda pr: api.design(spec_path, budget=budget, time_limit_s=time_limit, seed=seed,
+                                         out=out, on_progress=pr), quiet, settings)
 
 
 @app.command()
@@ -176,21 +176,22 @@ def table(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
           all_rows: bool = typer.Option(False, "--all", help="every stored candidate, infeasible included"),
           sort: str = typer.Option(None, "--sort", help="order the feasible rows by this metric (ascending)"),
           as_json: bool = typer.Option(False, "--json", help="JSON array of row objects, best first")) -> None:
-    """The ranked table of a run: feasible designs first (Pareto rank), then the least violating."""
-    from .runs import ranked
-    from .tables import json_rows, ranked_text
-    run = _open(run_dir)
-    df = ranked(run)
-    if sort is not None:
-        if sort not in df.columns:
-            fail(f"--sort: unknown metric {sort!r}; expected a metric column such as settling_time_s")
-        feas = df[df["feasible"]].sort_values(sort, kind="stable")
-        df = pd_concat([feas, df[~df["feasible"]]])
-    n = len(df) if all_rows else top
+    """The ranked table of a run: feasible designs first (Pareto rank), then the least violating.
+    Reads the ranking stored when the search ended; --all re-evaluates nothing."""
+    d = _open(run_dir)
+    n = None if all_rows else top
+    try:
+        view = d.view(n, sort, as_json)
+    except _api().SynthError as e:
+        fail(f"--{e}" if str(e).startswith("sort:") else str(e))
+    if not view.stored:
+        typer.echo(f"note: {run_dir} has no stored ranking for all its candidates (a search still "
+                   "running or interrupted); ranked now", err=True)
     if as_json:
-        typer.echo(json.dumps(jsonable(json_rows(run, df, n)), indent=2))
+        _stream_json_rows(view.records)
     else:
-        typer.echo(ranked_text(run, df, n))
+        from .tables import ranked_text
+        typer.echo(ranked_text(d.run, view))
 
 
 @app.command()
@@ -198,28 +199,26 @@ def show(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder"),
          cid: int = typer.Argument(..., metavar="ID", help="candidate id from the table"),
          as_json: bool = typer.Option(False, "--json", help="one JSON object")) -> None:
     """One candidate in full: controller, closed-loop poles, every metric and requirement, certificate."""
-    run, row, c, rec = _candidate(run_dir, cid)
-    rec.update(id=int(cid), rank=int(row["rank"]), structure=run.manifest.get("family", ""))
+    d = _open(run_dir)
     if as_json:
-        typer.echo(json.dumps(jsonable(rec), indent=2))
+        _print_json(_call(d.show, cid))
     else:
-        typer.echo(format_record(rec, title=f"candidate {cid} (rank {int(row['rank'])}) of {run.folder}"))
+        from .describe import format_record
+        rec = _call(d.show_record, cid)
+        typer.echo(format_record(rec, title=f"candidate {cid} (rank {rec['rank']}) of {d.folder}"))
 
 
 def _parse_set(items: list[str]) -> dict:
-    from .requirements import REQUIREMENTS
     out = {}
     for it in items:
         if "=" not in it:
             fail(f"--set {it!r}: expected KEY=VALUE, e.g. --set max_overshoot_pct=10")
         k, v = it.split("=", 1)
         k = k.strip()
-        if k not in REQUIREMENTS and k != "settling_band":
-            fail(f"--set {k}: not a requirement key; expected one of {', '.join(REQUIREMENTS)}")
         try:
-            out[k] = float(v)
-        except ValueError:
-            fail(f"--set {k}={v}: expected a number")
+            out.update(_api().check_changes({k: v}))
+        except _api().SynthError as e:
+            fail(f"--set {e}")
     return out
 
 
@@ -231,38 +230,24 @@ def tighten(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder 
             out: Path = typer.Option(None, "--out", help="new run folder"),
             top: int = typer.Option(10, "--top", min=1),
             report: bool = typer.Option(False, "--report", help="write the design report at the end"),
+            quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress display"),
             as_json: bool = typer.Option(False, "--json")) -> None:
     """A new run with changed requirements: re-rank the old archive at once (no re-evaluation),
     say which former front members fall out and why, then continue the search warm-started."""
-    from .archive import ArchiveError
-    from .runs import ranked, run_search, settings_from
-    from .tables import fallout_text
+    from .runs import settings_from
+    from .spec import SpecError
     old = _open(run_dir)
     changes = _parse_set(sets)
+    quiet = quiet or as_json
     try:
         new_spec = old.spec.tighten(changes)
-    except SpecError as e:
+    except SpecError as e:          # the message names the key and the expected range
         fail(str(e))
-    before = ranked(old)
-    after = ranked(old, dict(new_spec.requirements))
-    msg = fallout_text(before, after, dict(new_spec.requirements))
-    if not as_json:
-        typer.echo(msg, err=True)
-    keep_cols = [c for c in before.columns if c not in ("rank", "front", "crowding", "knee", "violation")]
-    inherited = after[keep_cols].assign(source="inherited").sort_values("id")
-    warm = after[after["feasible"]].head(64)
-    near = after[~after["feasible"]].head(32)
-    names = old.manifest.get("parameters") or []
-    warm_params = np.vstack([warm[names].to_numpy(float), near[names].to_numpy(float)]) if names else None
-    try:
-        run = run_search(new_spec, new_spec.to_toml(), out=out,
-                         settings=settings_from(new_spec, budget, time_limit, None),
-                         warm_params=warm_params, inherited=inherited,
-                         extra_manifest={"derived_from": str(run_dir), "changes": changes},
-                         on_progress=_progress_printer(not as_json))
-    except ArchiveError as e:
-        fail(str(e))
-    _finish_design(run, as_json, top, report)
+    settings = settings_from(new_spec, budget, time_limit, None)
+    say = None if as_json else (lambda msg: typer.echo(msg, err=True))
+    d = _search(lambda pr: old.tighten(budget, time_limit, out=out, on_progress=pr, on_message=say, **changes),
+                quiet, settings)
+    _finish(d, as_json, top, report)
 
 
 @app.command()
@@ -273,20 +258,12 @@ def export(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
            method: str = typer.Option("tustin", "--method", help="tustin | zoh"),
            prewarp: bool = typer.Option(True, "--prewarp/--no-prewarp", help="Tustin pre-warped at the crossover")) -> None:
     """CSV of one design: requirements, controller (continuous and discrete), closed-loop poles, caution."""
-    from .export import ExportError, export_design
     if method not in ("tustin", "zoh"):
         fail(f"--method {method!r}: expected tustin or zoh")
     if sample_time is not None and sample_time <= 0:
         fail("--sample-time: expected a positive sample period in seconds")
-    run, row, c, rec = _candidate(run_dir, cid)
-    spec = run.spec
-    path = output or (run.folder / f"design-{cid}.csv")
-    try:
-        export_design(path, spec.plant, c, rec, spec.name, dict(spec.requirements), sample_time=sample_time,
-                      method=method, prewarp=prewarp, structure=run.manifest.get("family"),
-                      settling_band=spec.options.settling_band)
-    except ExportError as e:
-        fail(str(e))
+    d = _open(run_dir)
+    path = _call(d.export, cid, output, sample_time=sample_time, method=method, prewarp=prewarp)
     typer.echo(str(path))
 
 
@@ -298,27 +275,37 @@ def report(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
            png: Path = typer.Option(None, "--png", help="also write the figures as PNG files into this folder")) -> None:
     """Self-contained HTML design report: step responses with the requirement bounds, open-loop
     frequency response and margins, pole map, trade-offs, requirement tables and certificates."""
-    from .archive import ArchiveError
-    from .report import ReportError, build_report
-    run = _open(run_dir)
-    try:
-        path = build_report(run, ids or [], output, png)
-    except (ArchiveError, ReportError) as e:
-        fail(str(e))
-    typer.echo(str(path))
+    d = _open(run_dir)
+    typer.echo(str(_call(d.report, output, ids or [], png)))
 
 
-def pd_concat(frames):
-    import pandas as pd
-    return pd.concat(frames)
+# ------------------------------------------------------------------ entry point
+def _on_sigint(signum, frame):
+    raise Interrupted()
+
+
+def _interrupted_message() -> str:
+    api = sys.modules.get("synth.api")
+    folders = list(getattr(api, "WRITING", []) or [])
+    if folders:
+        return (f"interrupted; {folders[-1]} keeps every batch stored so far: continue with "
+                f"'synth design --resume {folders[-1]}'")
+    return "interrupted"
 
 
 def main() -> None:
-    """Console-script entry point."""
+    """Console-script entry point: Ctrl-C anywhere gives one line and exit status 130."""
+    signal.signal(signal.SIGINT, _on_sigint)
     try:
         app()
-    except KeyboardInterrupt:
-        typer.echo("interrupted", err=True)
+    except (Interrupted, KeyboardInterrupt):
+        signal.signal(signal.SIGINT, signal.SIG_IGN)     # a second Ctrl-C must not interrupt the message
+        try:
+            sys.stdout.flush()
+        except Exception:
+            pass
+        sys.stderr.write("\n" + _interrupted_message() + "\n")
+        sys.stderr.flush()
         sys.exit(130)
 
 

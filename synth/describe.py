@@ -14,9 +14,6 @@ from typing import Any, Mapping
 import numpy as np
 
 from . import CAUTION
-from .evaluate import EvalOptions, METRICS, evaluate_controllers
-from .evaluate.core import EXTRA_FREQUENCIES
-from .evaluate import stability
 from .lti import TransferFunction, format_poly
 from .requirements import REQUIREMENTS, requirement_value
 
@@ -51,6 +48,8 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     Returns a record: every metric, ``requirements: {key: {value, limit, slack, met}}``,
     ``controller`` (gain, zeros, poles, numerator, denominator), ``certificate``.
     """
+    from .evaluate import EvalOptions, METRICS, evaluate_controllers, stability   # heavy: import on use
+    from .evaluate.core import EXTRA_FREQUENCIES
     opts = EvalOptions(settling_band=settling_band, pade_order=pade_order)
     row = evaluate_controllers(plant, controller.num[None, :], controller.den[None, :],
                                requirements, opts).iloc[0]

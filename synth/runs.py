@@ -1,7 +1,14 @@
 """Runs: from a spec to a stored, ranked, certified set of designs.
 
 The glue between the pure parts (search, evaluator, ranking) and the run folder;
-the CLI calls these functions and prints what they return.
+the API (:mod:`synth.api`) and the CLI call these functions and print what they return.
+
+When a search ends (design, resume, tighten) the ranking of every candidate and
+the certified records of the first rows are stored in the run
+(:meth:`synth.archive.RunStore.save_ranking`), so showing a table afterwards reads
+them instead of re-ranking and re-certifying. Heavy modules (pandas, the evaluator,
+the search) are imported where they are used, so that reading a stored table stays
+quick.
 """
 
 from __future__ import annotations
@@ -10,18 +17,17 @@ import platform
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Iterable, Iterator
 
 import numpy as np
-import pandas as pd
 
 from . import __version__
 from .archive import ArchiveError, RunStore, default_run_dir
-from .evaluate import EvalOptions, evaluate
 from .lti import TransferFunction
-from .rank import rank
-from .search.explore import Progress, Search, Settings, requirement_conflicts
-from .search.space import build_space
 from .spec import Spec, SpecError, load_spec
+
+SHOWN_STORED = 50          # rows whose certified records are stored when a search ends
+RECORD_CHUNK = 2000        # rows per chunk when streaming records of a whole run
 
 
 @dataclass
@@ -32,7 +38,17 @@ class Run:
     manifest: dict
 
 
-def settings_from(spec: Spec, budget=None, time_limit=None, seed=None) -> Settings:
+@dataclass
+class TableView:
+    """What a table shows: the run's counts and the JSON row records, best first."""
+    total: int
+    feasible: int
+    records: Iterable[dict]
+    stored: bool = True        # False when the ranking had to be computed (run in progress)
+
+
+def settings_from(spec: Spec, budget=None, time_limit=None, seed=None):
+    from .search.explore import Settings
     s = dict(spec.search)
     return Settings(budget=int(budget if budget is not None else s.get("budget", 20000)),
                     time_limit_s=float(time_limit if time_limit is not None else s.get("time_limit_s", 30.0)),
@@ -41,6 +57,7 @@ def settings_from(spec: Spec, budget=None, time_limit=None, seed=None) -> Settin
 
 def _versions() -> dict:
     import optuna
+    import pandas as pd
     import scipy
     return {"synth": __version__, "python": platform.python_version(), "numpy": np.__version__,
             "scipy": scipy.__version__, "pandas": pd.__version__, "optuna": optuna.__version__}
@@ -56,61 +73,89 @@ def open_run(folder: Path) -> Run:
     return Run(Path(folder), spec, store, store.load_json("manifest.json"))
 
 
-def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Settings | None = None,
+def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=None,
                resume: Path | None = None, warm_params: np.ndarray | None = None,
-               inherited: pd.DataFrame | None = None, extra_manifest: dict | None = None,
-               on_progress=None) -> Run:
-    """Create (or resume) a run folder and search until the budget or time limit is used."""
+               inherited=None, extra_manifest: dict | None = None,
+               on_progress=None, shown: int = SHOWN_STORED) -> Run:
+    """Create (or resume) a run folder and search until the budget or time limit is used.
+
+    The folder is locked for writing (:mod:`synth.runlock`) from start to end; a second
+    writer gets ArchiveError "run folder in use by process N". When the search ends the
+    ranking and the certified records of the first ``shown`` rows are stored.
+    """
+    import pandas as pd
+    from .evaluate import EvalOptions
+    from .search.explore import Search, Settings
     if resume is not None:
         run = open_run(resume)
         spec, store, manifest = run.spec, run.store, run.manifest
         if "settings" not in manifest:
             raise ArchiveError(f"{resume}: manifest.json has no search settings; expected a run written by synth")
-        settings = Settings(**manifest["settings"])
-        previous = store.load()
-        state = store.load_json("state.json")
+        store.lock_for_writing()
     else:
-        settings = settings or settings_from(spec)
         folder = Path(out) if out else default_run_dir(spec.name)
         store = RunStore.create(folder, spec_text)
-        manifest = {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                    "versions": _versions(), "settings": settings.__dict__.copy(),
-                    "objectives": list(spec.objectives), **(extra_manifest or {})}
-        previous, state = pd.DataFrame(), {}
-        if inherited is not None and not inherited.empty:
-            store.append(inherited)
-            previous = inherited
-    t0 = time.perf_counter()
+    try:
+        if resume is not None:
+            settings = Settings(**manifest["settings"])
+            previous = store.load()
+            state = store.load_state()
+        else:
+            settings = settings or settings_from(spec)
+            manifest = {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                        "versions": _versions(), "settings": settings.__dict__.copy(),
+                        "objectives": list(spec.objectives), **(extra_manifest or {})}
+            previous, state = pd.DataFrame(), {}
+            if inherited is not None and not inherited.empty:
+                store.append(inherited)
+                previous = inherited
+        t0 = time.perf_counter()
 
-    def on_batch(df, st):
-        store.append(df)
-        store.save_json("state.json", st)
+        def on_batch(df, st):
+            store.append(df, state=st)          # rows and the state after them: one transaction
+            store.save_json("state.json", st)
 
-    search = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
-                    EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
-                    on_batch=on_batch, on_progress=on_progress)
-    if not previous.empty:
-        search.restore(previous, state)
-        if resume is None:  # inherited rows: keep their ids, continue numbering after them
-            search.state["next_id"] = int(previous["id"].max()) + 1
-            search.state["evaluated"] = 0
-    if warm_params is not None and len(warm_params):
-        search._warm = search.space.encode(warm_params)
-    manifest.update({"family": search.space.family.describe(), "parameters": search.space.family.names,
-                     "bounds_applied": list(search.space.notes), "infeasible_by_construction":
-                     list(search.space.infeasible)})
-    store.save_json("manifest.json", manifest)
-    search.run()
-    store.save_json("state.json", dict(search.state))
-    wall = time.perf_counter() - t0
-    manifest.setdefault("timings", []).append({"wall_s": round(wall, 3), "evaluated": search.state["evaluated"],
-                                               "first_feasible_s": search.state["first_feasible_s"]})
-    store.save_json("manifest.json", manifest)
-    return Run(store.folder, spec, store, manifest)
+        search = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
+                        EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
+                        on_batch=on_batch, on_progress=on_progress)
+        if not previous.empty:
+            search.restore(previous, state)
+            if resume is None:  # inherited rows: keep their ids, continue numbering after them
+                search.state["evaluated"] = 0
+            # never reuse an id, whatever the state says
+            search.state["next_id"] = max(int(search.state.get("next_id", 1)), int(previous["id"].max()) + 1)
+        if warm_params is not None and len(warm_params):
+            search._warm = search.space.encode(warm_params)
+        manifest.update({"family": search.space.family.describe(), "parameters": search.space.family.names,
+                         "bounds_applied": list(search.space.notes), "infeasible_by_construction":
+                         list(search.space.infeasible)})
+        store.save_json("manifest.json", manifest)
+        search.run()
+        store.save_json("state.json", dict(search.state))
+        wall = time.perf_counter() - t0
+        manifest.setdefault("timings", []).append({"wall_s": round(wall, 3), "evaluated": search.state["evaluated"],
+                                                   "first_feasible_s": search.state["first_feasible_s"]})
+        store.save_json("manifest.json", manifest)
+        run = Run(store.folder, spec, store, manifest)
+        _report_phase(on_progress, "ranking", search)
+        store_ranking(run, shown)
+        return run
+    finally:
+        store.close()
 
 
-def ranked(run: Run, requirements: dict | None = None) -> pd.DataFrame:
-    """Every stored candidate of the run, ranked under ``requirements`` (default: the run's spec)."""
+def _report_phase(on_progress, phase: str, search) -> None:
+    """Tell the progress display about the post-search work (ranking, certificates)."""
+    if on_progress is None:
+        return
+    from .search.explore import Progress
+    on_progress(Progress(phase, search.state["evaluated"], search._feasible, {}, search._elapsed()))
+
+
+# ------------------------------------------------------------------ ranking
+def compute_ranked(run: Run, requirements: dict | None = None):
+    """Rank every stored candidate under ``requirements`` (default: the run's spec), now."""
+    from .rank import rank
     df = run.store.load()
     if df.empty:
         return df
@@ -120,12 +165,118 @@ def ranked(run: Run, requirements: dict | None = None) -> pd.DataFrame:
                 family=family_of(run))     # inactive stages count as the simpler structure
 
 
+def ranked(run: Run, requirements: dict | None = None):
+    """Every stored candidate of the run, ranked under ``requirements`` (default: the run's spec).
+
+    Under the run's own requirements the stored ranking is used when it covers every
+    stored candidate; otherwise (a run in progress, other requirements) it is computed."""
+    if requirements is None:
+        stored = _stored_ranked(run)
+        if stored is not None:
+            return stored
+    return compute_ranked(run, requirements)
+
+
+def _stored_ranked(run: Run, columns=None):
+    """The stored ranking joined to the stored candidates (only ``columns`` of them when given)."""
+    import pandas as pd
+    from .rank import _is_computed
+    ranking = run.store.load_ranking()
+    if ranking is None:
+        return None
+    df = run.store.load(columns=columns)
+    if df.empty:
+        return df
+    base = df[[c for c in df.columns if not _is_computed(c)]]
+    pos = pd.Series(np.arange(len(base)), index=base["id"].to_numpy())
+    take = pos.loc[ranking["id"].to_numpy()].to_numpy()
+    out = base.iloc[take]
+    extra = ranking.drop(columns=["id"]).set_index(out.index)
+    for c in extra.columns:
+        if c in ("feasible", "knee") or c.startswith("met_"):
+            extra[c] = extra[c].astype(bool)
+    return pd.concat([out, extra], axis=1)
+
+
+def store_ranking(run: Run, shown: int = SHOWN_STORED) -> None:
+    """Rank the run now and store the ranking and the certified records of the first rows."""
+    from .rank import _is_computed
+    from .tables import records
+    df = compute_ranked(run)
+    cols = ["id"] + [c for c in df.columns if _is_computed(c)] if len(df) else ["id", "rank"]
+    if df.empty:
+        import pandas as pd
+        df = pd.DataFrame({"id": np.zeros(0, dtype=np.int64), "rank": np.zeros(0, dtype=np.int64)})
+    recs = records(run, recheck(run, df.head(shown)), details=True) if len(df) else []
+    meta = {"rows": int(len(df)), "feasible": int(df["feasible"].sum()) if "feasible" in df else 0,
+            "shown": len(recs)}
+    run.store.save_ranking(df[cols], recs, meta)
+
+
+def table_view(run: Run, n: int | None = None, sort: str | None = None, text: bool = False) -> TableView:
+    """The rows a table shows (``n`` of them, every row when None), best first, as JSON records.
+
+    The first rows come with their exact certificate (stored when the search ended, or
+    computed now for rows that were not stored); with ``n=None`` the rows past those carry
+    the stored screening metrics, nothing is re-evaluated, and the records are streamed.
+    ``sort`` orders the feasible rows by a metric column (ascending). Raises KeyError for
+    an unknown sort column. With ``text`` the records come as their JSON texts (what
+    ``json.dumps`` would write), built without per-row dictionaries.
+    """
+    meta = run.store.ranking_meta()
+    if meta is not None and sort is None and n is not None and n <= meta["shown"]:
+        recs = run.store.shown_records(n, raw=text)   # the quick path: no pandas, no evaluation
+        return TableView(meta["rows"], meta["feasible"], recs)
+    df = None
+    if n is None and meta is not None:     # every row: read only the columns a record shows
+        from .tables import RECORD_METRICS
+        df = _stored_ranked(run, columns=["id", *family_of(run).names, *RECORD_METRICS, sort])
+    if df is None:
+        df = ranked(run)
+    if sort is not None:
+        import pandas as pd
+        if sort not in df.columns:
+            raise KeyError(sort)
+        feas = df[df["feasible"]].sort_values(sort, kind="stable")
+        df = pd.concat([feas, df[~df["feasible"]]])
+    total = len(df)
+    nfeas = int(df["feasible"].sum()) if total else 0
+    stored = dict(zip(run.store.shown_ids(), run.store.shown_records(raw=text))) if meta is not None else {}
+    if n is not None:
+        return TableView(total, nfeas, list(_records(run, df.head(n), stored, True, text)), meta is not None)
+    return TableView(total, nfeas, _records(run, df, stored, False, text), meta is not None)
+
+
+def _records(run: Run, df, stored: dict, certify: bool, text: bool = False) -> Iterator:
+    """Records of ``df``'s rows in order: stored certified ones where available, otherwise
+    certified now (``certify``) or built from the stored screening metrics; as JSON texts
+    with ``text``."""
+    from .tables import records, records_json
+    build = records_json if text else records
+    ids = df["id"].to_numpy()
+    have = np.fromiter((i in stored for i in ids), bool, len(ids))
+    i = 0
+    while i < len(df):
+        j = i
+        while j < len(df) and have[j] == have[i] and j - i < RECORD_CHUNK:
+            j += 1
+        if have[i]:
+            yield from (stored[k] for k in ids[i:j])
+        else:
+            part = df.iloc[i:j]
+            yield from (build(run, recheck(run, part), details=True) if certify and not text
+                        else build(run, recheck(run, part) if certify else part))   # JSON-ready already
+        i = j
+
+
 def family_of(run: Run):
+    from .search.space import build_space
     return build_space(run.spec.plant, run.spec.controller, dict(run.spec.requirements)).family
 
 
-def recheck(run: Run, rows: pd.DataFrame) -> pd.DataFrame:
+def recheck(run: Run, rows):
     """Re-evaluate rows from their parameters with the exact certificate (for display/export)."""
+    from .evaluate import EvalOptions, evaluate
     fam = family_of(run)
     if rows.empty:
         return rows
@@ -140,13 +291,13 @@ def recheck(run: Run, rows: pd.DataFrame) -> pd.DataFrame:
     return df
 
 
-def controller_of(run: Run, row: pd.Series) -> TransferFunction:
+def controller_of(run: Run, row) -> TransferFunction:
     fam = family_of(run)
     num, den = fam.controllers(np.array([[float(row[c]) for c in fam.names]]))
     return TransferFunction(num[0], den[0])
 
 
-def find_row(run: Run, ranked_df: pd.DataFrame, cid: int) -> pd.Series:
+def find_row(run: Run, ranked_df, cid: int):
     hit = ranked_df[ranked_df["id"] == cid]
     if hit.empty:
         raise ArchiveError(f"{run.folder}: no candidate with id {cid}; expected one of the ids in 'synth table'")
@@ -154,4 +305,5 @@ def find_row(run: Run, ranked_df: pd.DataFrame, cid: int) -> pd.Series:
 
 
 def conflicts(run: Run) -> list[dict]:
+    from .search.explore import requirement_conflicts
     return requirement_conflicts(run.store.load(), dict(run.spec.requirements))

@@ -14,7 +14,7 @@ import pytest
 from typer.testing import CliRunner
 
 from synth.cli import app
-from synth.runs import family_of, ranked, run_search, settings_from
+from synth.runs import family_of, ranked, run_search, settings_from, table_view
 from synth.spec import parse_spec
 from synth.tables import _inactive_lines, json_rows, ranked_text
 
@@ -41,7 +41,7 @@ def pid_run(tmp_path_factory):
 
 def test_table_and_json_give_the_pid_forms(pid_run):
     df = ranked(pid_run)
-    text = ranked_text(pid_run, df, 5)
+    text = ranked_text(pid_run, table_view(pid_run, 5))
     assert "PID settings" in text and "Ti s" in text and "K'" in text
     rows = json_rows(pid_run, df, 5)
     fam = family_of(pid_run)
@@ -65,11 +65,9 @@ def test_show_gives_the_pid_forms(pid_run):
 
 
 def test_inactive_stage_lines():
-    import pandas as pd
-    rows = pd.DataFrame({"id": [7, 8]})
-    details = [{"stages": [{"stage": 1, "role": "lead", "zero_rad_s": 30.0, "pole_rad_s": 300.0, "active": True,
+    rows = [{"id": 7, "stages": [{"stage": 1, "role": "lead", "zero_rad_s": 30.0, "pole_rad_s": 300.0, "active": True,
                             "reason": ""},
                            {"stage": 2, "role": "lead", "zero_rad_s": 9950.0, "pole_rad_s": 10000.0,
-                            "active": False, "reason": "zero/pole ratio within 2 % of 1"}]}, {"stages": []}]
-    lines = _inactive_lines(rows, details)
+                            "active": False, "reason": "zero/pole ratio within 2 % of 1"}]}, {"id": 8, "stages": []}]
+    lines = _inactive_lines(rows)
     assert len(lines) == 1 and lines[0].startswith("   ~ #7 stage 2") and "-9.95e3" in lines[0]

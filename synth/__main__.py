@@ -1,0 +1,3 @@
+from synth.cli import main
+
+main()

@@ -139,31 +139,105 @@ def _write_report(run, ids, out, png):
 
 
 @app.command()
-def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirements file (TOML)"),
+def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC...",
+                                                  help="requirements file(s) (TOML); several: one run folder each"),
            budget: int = typer.Option(None, "--budget", min=1, help="evaluations (default: spec [search].budget)"),
            time_limit: float = typer.Option(None, "--time-limit", min=0.1, help="seconds of search"),
            seed: int = typer.Option(None, "--seed", min=0, help="random seed (deterministic per seed and budget)"),
-           out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>)"),
+           out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>); "
+                                    "with several specs the folder of their run folders and summary.csv"),
            resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder"),
            top: int = typer.Option(10, "--top", min=1, help="rows to print"),
            report: bool = typer.Option(False, "--report", help="write the design report at the end"),
-           as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON")) -> None:
-    """Search the spec's compensator family, store every candidate, print the ranked table."""
+           as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON"),
+           cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
+                                       help="Dask scheduler to run on, e.g. tcp://127.0.0.1:8786 "
+                                            "(default $SYNTH_CLUSTER; unset: this machine)")) -> None:
+    """Search the spec's compensator family, store every candidate, print the ranked table.
+    Several specs: one run folder each under --out, a summary table and --out/summary.csv."""
     from .archive import ArchiveError
+    from .executor import ClusterError, cluster_address
     from .runs import run_search, settings_from
-    if resume is None and spec_path is None:
+    spec_paths = list(spec_paths or [])
+    if resume is None and not spec_paths:
         fail("design: give a SPEC file, or --resume RUN to continue a run")
+    if len(spec_paths) > 1:
+        if resume is not None or report:
+            fail("design: --resume and --report take one run; give one SPEC (or none with --resume)")
+        raise typer.Exit(_design_many(spec_paths, out, cluster_address(cluster), budget, time_limit, seed, as_json))
     try:
-        if resume is not None:
-            run = run_search(None, "", resume=resume, on_progress=_progress_printer(not as_json))
-        else:
-            spec = _load(spec_path)
-            text = spec_path.read_text(encoding="utf-8")
-            run = run_search(spec, text, out=out, settings=settings_from(spec, budget, time_limit, seed),
-                             on_progress=_progress_printer(not as_json))
-    except ArchiveError as e:
+        with _executor(cluster_address(cluster)) as (executor, where):
+            if resume is not None:
+                run = run_search(None, "", resume=resume, on_progress=_progress_printer(not as_json),
+                                 executor=executor)
+            else:
+                spec = _load(spec_paths[0])
+                text = spec_paths[0].read_text(encoding="utf-8")
+                if executor is not None and out is None:
+                    from .archive import default_run_dir
+                    out = default_run_dir(spec.name)   # named now, so a failure message can name it
+                run = run_search(spec, text, out=out, settings=settings_from(spec, budget, time_limit, seed),
+                                 on_progress=_progress_printer(not as_json), executor=executor)
+    except (ArchiveError, ClusterError) as e:
         fail(str(e))
+    except Exception as e:
+        from .executor import failure_message, is_infrastructure_failure
+        if not is_infrastructure_failure(e):
+            raise
+        fail(f"{failure_message(e, where)}; every finished batch is stored: continue with "
+             f"synth design --resume {resume or out}")
     _finish_design(run, as_json, top, report)
+
+
+def _executor(address):
+    """Context: (executor, where) for one spec: the Dask cluster at ``address``, or (None, ...) in-process."""
+    from contextlib import contextmanager
+
+    @contextmanager
+    def ctx():
+        if address is None:
+            yield None, "in-process"
+            return
+        from .executor import connect
+        ex = connect(address)
+        try:
+            yield ex, f"Dask scheduler {address}"
+        finally:
+            ex.shutdown(wait=False)
+    return ctx()
+
+
+def _design_many(paths, out, address, budget, time_limit, seed, as_json) -> int:
+    """Several specs: whole designs as tasks (local pool, or the cluster); print the summary."""
+    from .archive import ArchiveError
+    from .executor import ClusterError, connect
+    from .multi import default_out_dir, design_many, exit_status, summary_records, summary_text
+    out = out or default_out_dir()
+
+    def event(row):
+        if not as_json:
+            typer.echo(f"{row['name']}: {row['status']}" + (f" ({row['candidates']} candidates)"
+                                                            if row["candidates"] is not None else ""), err=True)
+    executor = None
+    try:
+        executor = connect(address) if address else None
+        summary = design_many(paths, out, executor, budget, time_limit, seed,
+                              where=f"Dask scheduler {address}" if address else "local pool", on_event=event)
+    except (ArchiveError, ClusterError) as e:
+        fail(str(e))
+    finally:
+        if executor is not None:
+            executor.shutdown(wait=False)
+    for r in summary_records(summary):
+        if r["status"] in ("invalid", "error"):
+            typer.echo(f"error: {r['message']}", err=True)
+    if as_json:
+        from . import CAUTION
+        typer.echo(json.dumps(jsonable({"out": str(out), "summary": summary_records(summary),
+                                        "caution": CAUTION}), indent=2))
+    else:
+        typer.echo(summary_text(summary, out))
+    return exit_status(summary)
 
 
 @app.command()

@@ -59,8 +59,11 @@ def open_run(folder: Path) -> Run:
 def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Settings | None = None,
                resume: Path | None = None, warm_params: np.ndarray | None = None,
                inherited: pd.DataFrame | None = None, extra_manifest: dict | None = None,
-               on_progress=None) -> Run:
-    """Create (or resume) a run folder and search until the budget or time limit is used."""
+               on_progress=None, executor=None) -> Run:
+    """Create (or resume) a run folder and search until the budget or time limit is used.
+
+    ``executor`` (synth.executor) runs the evaluator's batches; None runs them in-process.
+    Storage stays here in the calling process: one writer per run folder."""
     if resume is not None:
         run = open_run(resume)
         spec, store, manifest = run.spec, run.store, run.manifest
@@ -73,9 +76,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
         settings = settings or settings_from(spec)
         folder = Path(out) if out else default_run_dir(spec.name)
         store = RunStore.create(folder, spec_text)
-        manifest = {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                    "versions": _versions(), "settings": settings.__dict__.copy(),
-                    "objectives": list(spec.objectives), **(extra_manifest or {})}
+        manifest = new_manifest(spec, settings, extra_manifest)
         previous, state = pd.DataFrame(), {}
         if inherited is not None and not inherited.empty:
             store.append(inherited)
@@ -86,9 +87,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
         store.append(df)
         store.save_json("state.json", st)
 
-    search = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
-                    EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
-                    on_batch=on_batch, on_progress=on_progress)
+    search = make_search(spec, settings, on_batch, on_progress, executor)
     if not previous.empty:
         search.restore(previous, state)
         if resume is None:  # inherited rows: keep their ids, continue numbering after them
@@ -96,17 +95,39 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
             search.state["evaluated"] = 0
     if warm_params is not None and len(warm_params):
         search._warm = search.space.encode(warm_params)
-    manifest.update({"family": search.space.family.describe(), "parameters": search.space.family.names,
-                     "bounds_applied": list(search.space.notes), "infeasible_by_construction":
-                     list(search.space.infeasible)})
+    manifest.update(space_manifest(search))
     store.save_json("manifest.json", manifest)
     search.run()
     store.save_json("state.json", dict(search.state))
-    wall = time.perf_counter() - t0
-    manifest.setdefault("timings", []).append({"wall_s": round(wall, 3), "evaluated": search.state["evaluated"],
-                                               "first_feasible_s": search.state["first_feasible_s"]})
+    add_timing(manifest, time.perf_counter() - t0, search.state)
     store.save_json("manifest.json", manifest)
     return Run(store.folder, spec, store, manifest)
+
+
+def new_manifest(spec: Spec, settings: Settings, extra: dict | None = None) -> dict:
+    """The manifest of a new run: spec name, time, versions, search settings, objectives."""
+    return {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "versions": _versions(), "settings": settings.__dict__.copy(),
+            "objectives": list(spec.objectives), **(extra or {})}
+
+
+def make_search(spec: Spec, settings: Settings, on_batch=None, on_progress=None, executor=None) -> Search:
+    """The search of a spec (no storage: ``on_batch`` receives each evaluated batch)."""
+    return Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
+                  EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
+                  on_batch=on_batch, on_progress=on_progress, executor=executor)
+
+
+def space_manifest(search: Search) -> dict:
+    """What the manifest records about the search space: family, parameter names, bounds applied."""
+    sp = search.space
+    return {"family": sp.family.describe(), "parameters": sp.family.names,
+            "bounds_applied": list(sp.notes), "infeasible_by_construction": list(sp.infeasible)}
+
+
+def add_timing(manifest: dict, wall_s: float, state: dict) -> None:
+    manifest.setdefault("timings", []).append({"wall_s": round(wall_s, 3), "evaluated": state["evaluated"],
+                                               "first_feasible_s": state["first_feasible_s"]})
 
 
 def ranked(run: Run, requirements: dict | None = None) -> pd.DataFrame:

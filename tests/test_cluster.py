@@ -33,7 +33,7 @@ from synth.spec import load_spec
 
 ROOT = Path(__file__).resolve().parent.parent
 SPECS = [ROOT / "specs" / f for f in ("maglev_carriage.toml", "camera_gimbal.toml", "buck_converter.toml")]
-BUDGET, LIMIT = 400, 600.0
+BUDGET, LIMIT = 250, 600.0
 runner = CliRunner()
 
 
@@ -108,7 +108,7 @@ class LocalDask:
                 self.procs[n].terminate()
         for n in order:
             try:
-                self.procs[n].wait(timeout=5)
+                self.procs[n].wait(timeout=3)
             except subprocess.TimeoutExpired:
                 self.procs[n].kill()
                 self.procs[n].wait(timeout=10)
@@ -178,12 +178,12 @@ def test_three_specs_on_cluster_equal_local_run(local, executor, tmp_path):
 def test_single_spec_batches_on_cluster_equal_in_process(executor, tmp_path):
     """One spec with --cluster: its evaluator batches are the tasks (chunks merged in order)."""
     spec = load_spec(SPECS[0])
-    s = settings_from(spec, 900, LIMIT, 3)
+    s = settings_from(spec, 600, LIMIT, 3)      # a 420-row screening batch: seven chunks
     text = SPECS[0].read_text()
     a = run_search(spec, text, out=tmp_path / "a", settings=s, executor=InlineExecutor())
     b = run_search(spec, text, out=tmp_path / "b", settings=s, executor=executor)
     da, db = a.store.load(), b.store.load()
-    assert len(da) == 900 and da["id"].is_unique
+    assert len(da) == 600 and da["id"].is_unique
     pd.testing.assert_frame_equal(da, db, check_exact=True)
     pd.testing.assert_frame_equal(ranked(a), ranked(b), check_exact=True)
 
@@ -206,8 +206,7 @@ def test_worker_killed_mid_run_loses_and_duplicates_nothing(local, cluster, exec
         victim = cluster.worker_of(executor.client)
         time.sleep(0.05)
     assert victim is not None, "no task reached a worker"
-    time.sleep(0.3)             # mid-design
-    cluster.kill(victim)
+    cluster.kill(victim)        # with a design task on it (about 0.5 s of work each)
     cluster.start_worker(f"{victim}-replacement")   # the pool may also grow while a run goes on
     t.join(timeout=120)
     assert not t.is_alive()
@@ -225,7 +224,7 @@ def test_lost_scheduler_clear_error_and_resumable(local, tmp_path):
 
         def drive():
             try:
-                design_many(SPECS[:2], out, ex, budget=BUDGET, time_limit=LIMIT, where=f"scheduler {mini.address}")
+                design_many(SPECS[:1], out, ex, budget=BUDGET, time_limit=LIMIT, where=f"scheduler {mini.address}")
             except BaseException as e:
                 result["error"] = e
 
@@ -243,7 +242,7 @@ def test_lost_scheduler_clear_error_and_resumable(local, tmp_path):
     assert isinstance(err, ClusterError), err
     assert "lost the connection to the Dask scheduler" in str(err) and "--resume" in str(err)
     summary = pd.read_csv(out / "summary.csv")
-    assert len(summary) == 2 and set(summary["status"]) <= {"feasible", "error"}
+    assert list(summary["status"]) == ["error"] and "--resume" in summary.loc[0, "message"]
     for r in summary.itertuples():        # every unfinished folder resumes to the local result
         if r.status == "error":
             run_search(None, "", resume=Path(r.run_folder))

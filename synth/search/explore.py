@@ -34,8 +34,10 @@ SOBOL_BATCH = 2048
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
 OPTUNA_BATCH = 32
 OBJECTIVE_FLOOR = 1e-9
-CHUNK_ROWS = 256          # rows per evaluator task when an executor is given (fixed: results do not
-                          # depend on the number of workers); ~ the evaluator's per-call cost in rows
+CHUNK_SPLIT = 8           # with an executor a batch becomes up to this many evaluator tasks ...
+CHUNK_ROWS = 64           # ... of at least this many rows (the evaluator's fixed cost per call, ~50 ms,
+                          # is worth ~64 rows of a dead-time loop); a function of the batch length only,
+                          # so the rows never depend on the number of workers
 
 
 @dataclass
@@ -125,13 +127,14 @@ class Search:
     def evaluate_params(self, params: np.ndarray) -> pd.DataFrame:
         """The one place the search hands a parameter batch to the evaluator (the seam for
         model sets and for where the work runs). With an executor the batch is split into
-        chunks of ``chunk_rows`` submitted as pure tasks and merged in submission order,
+        chunks (CHUNK_SPLIT, CHUNK_ROWS) submitted as pure tasks and merged in submission order,
         so the rows do not depend on how many workers there are or which one ran what."""
         task = (self.plant, self.space.family)
         if self.executor is None:
             return evaluate_batch(*task, params, self.requirements, self.options)
-        futures = [self.executor.submit(evaluate_batch, *task, params[i:i + self.chunk_rows], self.requirements,
-                                        self.options) for i in range(0, len(params), self.chunk_rows)]
+        rows = max(self.chunk_rows, -(-len(params) // CHUNK_SPLIT))
+        futures = [self.executor.submit(evaluate_batch, *task, params[i:i + rows], self.requirements, self.options)
+                   for i in range(0, len(params), rows)]
         return pd.concat([f.result() for f in futures], ignore_index=True)
 
     def _elapsed(self) -> float:

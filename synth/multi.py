@@ -167,7 +167,7 @@ def design_many(spec_paths, out_dir: Path, executor: cf.Executor | None = None, 
     own = executor is None
     if own:
         executor = local_pool(len(valid)) if len(valid) > 1 else InlineExecutor()
-    failure = None
+    failure, aborted = None, True
     try:
         for it in valid:
             _start(it)
@@ -186,9 +186,10 @@ def design_many(spec_paths, out_dir: Path, executor: cf.Executor | None = None, 
                 it.row = summary_row(it)
             if on_event:
                 on_event(it.row)
-    finally:
+        aborted = failure is not None
+    finally:   # an interrupt or a failure does not wait for the other designs
         if own:
-            executor.shutdown(wait=failure is None, cancel_futures=failure is not None)
+            executor.shutdown(wait=not aborted, cancel_futures=aborted)
     for it in valid:
         if not it.row:
             it.row = _row(it, "error", message=f"not finished ({failure}); resume with "

@@ -201,7 +201,7 @@ def _executor(address):
         from .executor import connect
         ex = connect(address)
         try:
-            yield ex, f"Dask scheduler {address}"
+            yield ex, f"--cluster {address}"
         finally:
             ex.shutdown(wait=False)
     return ctx()
@@ -222,7 +222,7 @@ def _design_many(paths, out, address, budget, time_limit, seed, as_json) -> int:
     try:
         executor = connect(address) if address else None
         summary = design_many(paths, out, executor, budget, time_limit, seed,
-                              where=f"Dask scheduler {address}" if address else "local pool", on_event=event)
+                              where=f"--cluster {address}" if address else "local pool", on_event=event)
     except (ArchiveError, ClusterError) as e:
         fail(str(e))
     finally:

@@ -10,6 +10,8 @@ search (determinism holds for a given seed and budget).
 from __future__ import annotations
 
 import csv
+import io
+import json
 import os
 import shutil
 import socket
@@ -21,13 +23,15 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from typer.testing import CliRunner
 
 from synth import executor as ex_mod
 from synth.archive import RunStore
 from synth.cli import app
 from synth.executor import ClusterError, InlineExecutor, connect
-from synth.multi import design_many, folder_names, summary_csv, summary_frame
+from synth.multi import design_many, folder_names, safe_name, summary_csv, summary_frame
 from synth.runs import open_run, ranked, run_search, settings_from
 from synth.spec import load_spec
 
@@ -276,6 +280,34 @@ def test_folder_names_deterministic_and_distinct():
     assert folder_names(names) == got
 
 
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.text(alphabet="abAB -_.", max_size=6), max_size=12))
+def test_folder_names_law(names):
+    """For any names: distinct (case-insensitively), deterministic, each the spec's own safe name
+    or that name with a -k suffix, and the first spec of a name that no other spec takes keeps it."""
+    got = folder_names(names)
+    assert len(got) == len(names) and len({g.lower() for g in got}) == len(got)
+    assert folder_names(list(names)) == got
+    for n, g in zip(names, got):
+        b = safe_name(n)
+        assert g == b or (g.startswith(b + "-") and g[len(b) + 1:].isdigit())
+    lowered = [safe_name(n).lower() for n in names]
+    for i, n in enumerate(names):
+        if lowered.index(lowered[i]) == i:
+            assert got[i] == safe_name(n)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.text(max_size=30), st.text(max_size=60), st.floats(allow_nan=False, allow_infinity=False))
+def test_summary_csv_round_trip(name, message, value):
+    """Any name and message (commas, quotes, line breaks) and any finite float survive the csv module."""
+    rows = [{"name": name, "spec": "a.toml", "status": "error", "candidates": 1, "feasible": 0, "knee_id": None,
+             "knee": {"settling_time_s": value}, "conflict": "", "run_folder": "", "message": message}]
+    recs = list(csv.DictReader(io.StringIO(summary_csv(summary_frame(rows)), newline="")))
+    assert len(recs) == 1 and recs[0]["name"] == name and recs[0]["message"] == message
+    assert float(recs[0]["knee_settling_time_s"]) == value
+
+
 def test_invalid_spec_row_others_run_exit_2_and_clashes(tmp_path):
     bad = tmp_path / "bad.toml"
     bad.write_text(BAD)
@@ -298,6 +330,11 @@ def test_invalid_spec_row_others_run_exit_2_and_clashes(tmp_path):
     assert bool(knee["knee"]) and s.loc[0, "knee_settling_time_s"] == float(knee["settling_time_s"])
     r = runner.invoke(app, ["design", str(a), str(b), "--out", str(out), "--json"])   # folders in use
     assert r.exit_code == 2 and "exists and is not empty" in r.output
+    r = runner.invoke(app, ["design", str(bad), str(a), "--out", str(tmp_path / "j"), "--json"])
+    assert r.exit_code == 2
+    doc = json.loads(r.stdout)
+    assert [x["status"] for x in doc["summary"]] == ["invalid", "feasible"] and doc["caution"]
+    assert doc["summary"][1]["knee_id"] == int(pd.read_csv(tmp_path / "j" / "summary.csv").loc[1, "knee_id"])
 
 
 def test_summary_csv_plain_for_pandas_and_csv(tmp_path):

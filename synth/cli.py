@@ -139,7 +139,7 @@ def _write_report(run, ids, out, png):
 
 
 @app.command()
-def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC...",
+def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC",
                                                   help="requirements file(s) (TOML); several: one run folder each"),
            budget: int = typer.Option(None, "--budget", min=1, help="evaluations (default: spec [search].budget)"),
            time_limit: float = typer.Option(None, "--time-limit", min=0.1, help="seconds of search"),

@@ -118,13 +118,14 @@ def check(spec, controller) -> dict:
 
 # ------------------------------------------------------------------ runs
 def design(spec, *, budget: int | None = None, time_limit_s: float | None = None, seed: int | None = None,
-           out=None, on_progress: Callable | None = None) -> "Design":
+           out=None, on_progress: Callable | None = None, executor=None) -> "Design":
     """Search the spec's compensator family into a new run folder; return the finished Design.
 
     ``spec``: a path, TOML text or a dict; ``budget`` evaluations, ``time_limit_s`` seconds
     and ``seed`` override the spec's ``[search]`` table; ``out`` is the new run folder
     (default ``runs/<name>-<UTC time>``). ``on_progress`` receives
-    :class:`synth.search.explore.Progress` records while the search runs.
+    :class:`synth.search.explore.Progress` records while the search runs; ``executor``
+    (:mod:`synth.executor`, e.g. a Dask cluster's) runs the evaluator's batches.
     """
     from .runs import run_search, settings_from
     s, text = read_spec(spec)
@@ -132,18 +133,19 @@ def design(spec, *, budget: int | None = None, time_limit_s: float | None = None
     settings = settings_from(s, budget, time_limit_s, seed)
     try:
         with writing(folder):
-            run = run_search(s, text, out=folder, settings=settings, on_progress=on_progress)
+            run = run_search(s, text, out=folder, settings=settings, on_progress=on_progress,
+                             executor=executor)
     except ArchiveError as e:
         raise SynthError(str(e)) from None
     return Design(run)
 
 
-def resume(path, *, on_progress: Callable | None = None) -> "Design":
+def resume(path, *, on_progress: Callable | None = None, executor=None) -> "Design":
     """Continue an interrupted run folder where its last stored batch ended."""
     from .runs import run_search
     try:
         with writing(Path(path)):
-            run = run_search(None, "", resume=Path(path), on_progress=on_progress)
+            run = run_search(None, "", resume=Path(path), on_progress=on_progress, executor=executor)
     except ArchiveError as e:
         raise SynthError(str(e)) from None
     return Design(run)

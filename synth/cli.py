@@ -133,32 +133,57 @@ def _search(start, quiet: bool, settings=None):
 
 
 @app.command()
-def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirements file (TOML)"),
+def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC",
+                                                  help="requirements file(s) (TOML); several: one run folder each"),
            budget: int = typer.Option(None, "--budget", min=1, help="evaluations (default: spec [search].budget)"),
            time_limit: float = typer.Option(None, "--time-limit", min=0.1, help="seconds of search"),
            seed: int = typer.Option(None, "--seed", min=0, help="random seed (deterministic per seed and budget)"),
-           out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>)"),
+           out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>); "
+                                    "with several specs the folder of their run folders and summary.csv"),
            resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder"),
            top: int = typer.Option(10, "--top", min=1, help="rows to print"),
            report: bool = typer.Option(False, "--report", help="write the design report at the end"),
            quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress display"),
-           as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON")) -> None:
-    """Search the spec's compensator family, store every candidate, print the ranked table."""
+           as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON"),
+           cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
+                                       help="Dask scheduler to run on, e.g. tcp://127.0.0.1:8786 "
+                                            "(default $SYNTH_CLUSTER; unset: this machine)")) -> None:
+    """Search the spec's compensator family, store every candidate, print the ranked table.
+    Several specs: one run folder each under --out, a summary table and --out/summary.csv."""
+    from .executor import cluster_address
     api = _api()
     quiet = quiet or as_json
-    if resume is not None:
-        if spec_path is not None:
-            fail("design: give either a SPEC file or --resume RUN, not both")
-        settings = _open(resume).run.manifest.get("settings") or {}
-        d = _search(lambda pr: api.resume(resume, on_progress=pr), quiet, settings)
-    elif spec_path is None:
+    spec_paths = list(spec_paths or [])
+    address = cluster_address(cluster)
+    if len(spec_paths) > 1:
+        if resume is not None or report:
+            fail("design: --resume and --report take one run; give one SPEC (or none with --resume)")
+        raise typer.Exit(_design_many(spec_paths, out, address, budget, time_limit, seed, as_json))
+    if resume is not None and spec_paths:
+        fail("design: give either a SPEC file or --resume RUN, not both")
+    if resume is None and not spec_paths:
         fail("design: give a SPEC file, or --resume RUN to continue a run")
-    else:
-        d = _design_one(spec_path, budget, time_limit, seed, out, quiet)
+    if resume is None and address is not None and out is None:
+        from .archive import default_run_dir
+        spec, _ = _call(api.read_spec, spec_paths[0])
+        out = default_run_dir(spec.name)      # named now, so a failure message can name it
+    with _executor(address) as (executor, where):
+        try:
+            if resume is not None:
+                settings = _open(resume).run.manifest.get("settings") or {}
+                d = _search(lambda pr: api.resume(resume, on_progress=pr, executor=executor), quiet, settings)
+            else:
+                d = _design_one(spec_paths[0], budget, time_limit, seed, out, quiet, executor)
+        except Exception as e:
+            from .executor import failure_message, is_infrastructure_failure
+            if not is_infrastructure_failure(e):
+                raise
+            fail(f"{failure_message(e, where)}; every finished batch is stored: continue with "
+                 f"synth design --resume {resume or out}")
     _finish(d, as_json, top, report)
 
 
-def _design_one(spec_path: Path, budget, time_limit, seed, out, quiet: bool):
+def _design_one(spec_path: Path, budget, time_limit, seed, out, quiet: bool, executor=None):
     """One spec: validate, search into ``out``, return the Design (the unit a multi-spec
     or cluster design repeats)."""
     from .runs import settings_from
@@ -167,7 +192,62 @@ def _design_one(spec_path: Path, budget, time_limit, seed, out, quiet: bool):
     _warn(spec)
     settings = settings_from(spec, budget, time_limit, seed)
     return _search(lambda pr: api.design(spec_path, budget=budget, time_limit_s=time_limit, seed=seed,
-                                         out=out, on_progress=pr), quiet, settings)
+                                         out=out, on_progress=pr, executor=executor), quiet, settings)
+
+
+def _executor(address):
+    """Context: (executor, where) for one spec: the Dask cluster at ``address``, or (None, ...) in-process."""
+    from contextlib import contextmanager
+
+    @contextmanager
+    def ctx():
+        if address is None:
+            yield None, "in-process"
+            return
+        from .executor import ClusterError, connect
+        try:
+            ex = connect(address)
+        except ClusterError as e:
+            fail(str(e))
+        try:
+            yield ex, f"--cluster {address}"
+        finally:
+            ex.shutdown(wait=False)
+    return ctx()
+
+
+def _design_many(paths, out, address, budget, time_limit, seed, as_json) -> int:
+    """Several specs: whole designs as tasks (local pool, or the cluster); print the summary."""
+    from .archive import ArchiveError
+    from .executor import ClusterError, connect
+    from .multi import default_out_dir, design_many, exit_status, summary_records, summary_text
+    out = out or default_out_dir()
+
+    def event(row):
+        if not as_json:
+            typer.echo(f"{row['name']}: {row['status']}" + (f" ({row['candidates']} candidates)"
+                                                            if row["candidates"] is not None else ""), err=True)
+    executor = None
+    try:
+        executor = connect(address) if address else None
+        summary = design_many(paths, out, executor, budget, time_limit, seed,
+                              where=f"--cluster {address}" if address else "local pool", on_event=event)
+    except (ArchiveError, ClusterError) as e:
+        fail(str(e))
+    finally:
+        if executor is not None:
+            executor.shutdown(wait=False)
+    for r in summary_records(summary):
+        if r["status"] in ("invalid", "error"):
+            typer.echo(f"error: {r['message']}", err=True)
+    if as_json:
+        from . import CAUTION
+        from .describe import jsonable
+        typer.echo(json.dumps(jsonable({"out": str(out), "summary": summary_records(summary),
+                                        "caution": CAUTION}), indent=2))
+    else:
+        typer.echo(summary_text(summary, out))
+    return exit_status(summary)
 
 
 @app.command()

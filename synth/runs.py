@@ -76,16 +76,17 @@ def open_run(folder: Path) -> Run:
 def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=None,
                resume: Path | None = None, warm_params: np.ndarray | None = None,
                inherited=None, extra_manifest: dict | None = None,
-               on_progress=None, shown: int = SHOWN_STORED) -> Run:
+               on_progress=None, shown: int = SHOWN_STORED, executor=None) -> Run:
     """Create (or resume) a run folder and search until the budget or time limit is used.
 
     The folder is locked for writing (:mod:`synth.runlock`) from start to end; a second
     writer gets ArchiveError "run folder in use by process N". When the search ends the
     ranking and the certified records of the first ``shown`` rows are stored.
+    ``executor`` (synth.executor) runs the evaluator's batches; None runs them in-process.
+    Storage stays here in the calling process: one writer per run folder.
     """
     import pandas as pd
-    from .evaluate import EvalOptions
-    from .search.explore import Search, Settings
+    from .search.explore import Settings
     if resume is not None:
         run = open_run(resume)
         spec, store, manifest = run.spec, run.store, run.manifest
@@ -102,9 +103,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
             state = store.load_state()
         else:
             settings = settings or settings_from(spec)
-            manifest = {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                        "versions": _versions(), "settings": settings.__dict__.copy(),
-                        "objectives": list(spec.objectives), **(extra_manifest or {})}
+            manifest = new_manifest(spec, settings, extra_manifest)
             previous, state = pd.DataFrame(), {}
             if inherited is not None and not inherited.empty:
                 store.append(inherited)
@@ -115,9 +114,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
             store.append(df, state=st)          # rows and the state after them: one transaction
             store.save_json("state.json", st)
 
-        search = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
-                        EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
-                        on_batch=on_batch, on_progress=on_progress)
+        search = make_search(spec, settings, on_batch, on_progress, executor)
         if not previous.empty:
             search.restore(previous, state)
             if resume is None:  # inherited rows: keep their ids, continue numbering after them
@@ -126,15 +123,11 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
             search.state["next_id"] = max(int(search.state.get("next_id", 1)), int(previous["id"].max()) + 1)
         if warm_params is not None and len(warm_params):
             search._warm = search.space.encode(warm_params)
-        manifest.update({"family": search.space.family.describe(), "parameters": search.space.family.names,
-                         "bounds_applied": list(search.space.notes), "infeasible_by_construction":
-                         list(search.space.infeasible)})
+        manifest.update(space_manifest(search))
         store.save_json("manifest.json", manifest)
         search.run()
         store.save_json("state.json", dict(search.state))
-        wall = time.perf_counter() - t0
-        manifest.setdefault("timings", []).append({"wall_s": round(wall, 3), "evaluated": search.state["evaluated"],
-                                                   "first_feasible_s": search.state["first_feasible_s"]})
+        add_timing(manifest, time.perf_counter() - t0, search.state)
         store.save_json("manifest.json", manifest)
         run = Run(store.folder, spec, store, manifest)
         _report_phase(on_progress, "ranking", search)
@@ -142,6 +135,34 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
         return run
     finally:
         store.close()
+
+
+def new_manifest(spec: Spec, settings, extra: dict | None = None) -> dict:
+    """The manifest of a new run: spec name, time, versions, search settings, objectives."""
+    return {"spec": spec.name, "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "versions": _versions(), "settings": settings.__dict__.copy(),
+            "objectives": list(spec.objectives), **(extra or {})}
+
+
+def make_search(spec: Spec, settings, on_batch=None, on_progress=None, executor=None):
+    """The search of a spec (no storage: ``on_batch`` receives each evaluated batch)."""
+    from .evaluate import EvalOptions
+    from .search.explore import Search
+    return Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
+                  EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
+                  on_batch=on_batch, on_progress=on_progress, executor=executor)
+
+
+def space_manifest(search) -> dict:
+    """What the manifest records about the search space: family, parameter names, bounds applied."""
+    sp = search.space
+    return {"family": sp.family.describe(), "parameters": sp.family.names,
+            "bounds_applied": list(sp.notes), "infeasible_by_construction": list(sp.infeasible)}
+
+
+def add_timing(manifest: dict, wall_s: float, state: dict) -> None:
+    manifest.setdefault("timings", []).append({"wall_s": round(wall_s, 3), "evaluated": state["evaluated"],
+                                               "first_feasible_s": state["first_feasible_s"]})
 
 
 def _report_phase(on_progress, phase: str, search) -> None:

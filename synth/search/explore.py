@@ -34,6 +34,10 @@ SOBOL_BATCH = 2048
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
 OPTUNA_BATCH = 32
 OBJECTIVE_FLOOR = 1e-9
+CHUNK_SPLIT = 8           # with an executor a batch becomes up to this many evaluator tasks ...
+CHUNK_ROWS = 64           # ... of at least this many rows (the evaluator's fixed cost per call, ~50 ms,
+                          # is worth ~64 rows of a dead-time loop); a function of the batch length only,
+                          # so the rows never depend on the number of workers
 
 
 @dataclass
@@ -60,8 +64,10 @@ class Search:
     def __init__(self, plant: TransferFunction, controller, requirements: dict, objectives: tuple[str, ...],
                  settings: Settings, eval_options: EvalOptions,
                  on_batch: Callable[[pd.DataFrame, dict], None] | None = None,
-                 on_progress: Callable[[Progress], None] | None = None):
+                 on_progress: Callable[[Progress], None] | None = None, executor=None):
         self.plant = plant
+        self.executor = executor          # a concurrent.futures.Executor (synth.executor), or None: in-process
+        self.chunk_rows = CHUNK_ROWS
         self.requirements = dict(requirements)
         self.objectives = tuple(objectives)
         self.settings = settings
@@ -120,10 +126,16 @@ class Search:
 
     def evaluate_params(self, params: np.ndarray) -> pd.DataFrame:
         """The one place the search hands a parameter batch to the evaluator (the seam for
-        model sets and for where the work runs)."""
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            return evaluate(self.plant, self.space.family, params, self.requirements, self.options)
+        model sets and for where the work runs). With an executor the batch is split into
+        chunks (CHUNK_SPLIT, CHUNK_ROWS) submitted as pure tasks and merged in submission order,
+        so the rows do not depend on how many workers there are or which one ran what."""
+        task = (self.plant, self.space.family)
+        if self.executor is None:
+            return evaluate_batch(*task, params, self.requirements, self.options)
+        rows = max(self.chunk_rows, -(-len(params) // CHUNK_SPLIT))
+        futures = [self.executor.submit(evaluate_batch, *task, params[i:i + rows], self.requirements, self.options)
+                   for i in range(0, len(params), rows)]
+        return pd.concat([f.result() for f in futures], ignore_index=True)
 
     def _elapsed(self) -> float:
         return self.state.get("search_s_before", 0.0) + (_time.perf_counter() - self._t0)
@@ -269,6 +281,14 @@ class Search:
         rest = rest.iloc[np.argsort(v, kind="stable")[: max(k - len(feas), k // 4)]]
         rest = rest[np.isfinite(violation(rest, self.requirements))]
         return pd.concat([feas, rest])
+
+
+def evaluate_batch(plant, family, params, requirements, options) -> pd.DataFrame:
+    """One evaluator task: (plant, family, parameter batch, requirements, options) -> metrics
+    frame. Pure (no storage, no search state), so it may run in any process, twice."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return evaluate(plant, family, params, requirements, options)
 
 
 def requirement_conflicts(df: pd.DataFrame, requirements: dict) -> list[dict]:

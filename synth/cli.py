@@ -63,7 +63,7 @@ def check(spec_path: Path = typer.Argument(..., metavar="SPEC", help="requiremen
     if not any(c.num):
         fail("--controller: the compensator is identically zero")
     rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
+                           spec.options.pade_order, models=spec.models)
     if as_json:
         rec = dict(rec, spec=spec.name, source=str(spec_path), warnings=list(spec.warnings))
         typer.echo(json.dumps(jsonable(rec), indent=2))
@@ -111,7 +111,7 @@ def _candidate(run_dir: Path, cid: int):
     c = controller_of(run, row)
     spec = run.spec
     rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                           spec.options.pade_order)
+                           spec.options.pade_order, models=spec.models)
     return run, row, c, rec
 
 

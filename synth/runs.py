@@ -88,7 +88,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
 
     search = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
                     EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
-                    on_batch=on_batch, on_progress=on_progress)
+                    on_batch=on_batch, on_progress=on_progress, models=spec.models)
     if not previous.empty:
         search.restore(previous, state)
         if resume is None:  # inherited rows: keep their ids, continue numbering after them
@@ -123,6 +123,17 @@ def family_of(run: Run):
     return build_space(run.spec.plant, run.spec.controller, dict(run.spec.requirements)).family
 
 
+def evaluate_spec(spec: Spec, fam, params: np.ndarray, opts: EvalOptions) -> pd.DataFrame:
+    """Evaluate on the spec's plant, or worst-case over its model set (box certified exactly when certifying)."""
+    if spec.models is None:
+        df = evaluate(spec.plant, fam, params, dict(spec.requirements), opts)
+        df["robust_stable"] = df["certified"] if opts.certify else df["internally_stable"]
+        return df
+    from .evaluate.robust import evaluate_models
+    return evaluate_models(spec.models, fam, params, dict(spec.requirements), opts, tuple(spec.objectives),
+                           certify_box=opts.certify)
+
+
 def recheck(run: Run, rows: pd.DataFrame) -> pd.DataFrame:
     """Re-evaluate rows from their parameters with the exact certificate (for display/export)."""
     fam = family_of(run)
@@ -131,7 +142,7 @@ def recheck(run: Run, rows: pd.DataFrame) -> pd.DataFrame:
     params = rows[fam.names].to_numpy(float)
     opts = EvalOptions(settling_band=run.spec.options.settling_band, pade_order=run.spec.options.pade_order,
                        certify=True)
-    df = evaluate(run.spec.plant, fam, params, dict(run.spec.requirements), opts)
+    df = evaluate_spec(run.spec, fam, params, opts)
     df.insert(0, "id", rows["id"].to_numpy())
     for c in ("rank", "front", "knee", "crowding", "violation"):
         if c in rows:

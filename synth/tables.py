@@ -45,6 +45,7 @@ def json_rows(run: Run, df: pd.DataFrame, n: int) -> list[dict]:
         for m in METRICS:
             v = r[m]
             obj[m] = list(v[~np.isnan(v)]) if m == "closed_loop_poles" else v
+        obj["robust_stable"] = bool(r.get("robust_stable", r["certified"]))   # worst case over a model set
         obj["requirements"] = {
             k: {"value": float(requirement_value(REQUIREMENTS[k], r.to_dict())), "limit": float(lim),
                 "slack": float(r[f"slack_{k}"]), "met": bool(r[f"met_{k}"])}
@@ -77,6 +78,9 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
     rows = recheck(run, df.head(n))
     lines = [f"{run.manifest.get('family', '')} on {run.spec.name}: {len(df)} candidates, "
              f"{int(df['feasible'].sum()) if len(df) else 0} feasible", ""]
+    if run.spec.models is not None:   # values are worst cases; stability certified over the box
+        lines[-1:] = [f"worst case over {run.spec.models.describe()}; stability certified, performance "
+                      "sampled", ""]
     if rows.empty:
         return "\n".join(lines + ["(no candidates)"])
     objs = list(run.spec.objectives)
@@ -88,6 +92,8 @@ def ranked_text(run: Run, df: pd.DataFrame, n: int) -> str:
     for i, (_, r) in enumerate(rows.iterrows()):
         mark = "*" if r.get("knee", False) else (" " if r["feasible"] else "x")
         cert = "" if (r["certified"] or not r["feasible"]) else " (uncertified)"
+        if run.spec.models is not None and not bool(r.get("robust_stable", True)):
+            cert += " (not robustly stable)"
         z, p = _roots_text(zeros[i]), _roots_text(poles[i])
         line = f"{int(r['rank']):>4}{mark} {int(r['id']):>7}  {fmt_num(gains[i], 4):>9}  {z[:17]:<17} {p[:17]:<17}"
         for o in objs:

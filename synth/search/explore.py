@@ -28,7 +28,7 @@ from ..rank import violation
 from ..requirements import REQUIREMENTS, requirement_value
 from .refine import compass_polish
 from .seeds import seeds as classical_seeds
-from .space import Space, build_space
+from .space import Space, build_space, build_space_models
 
 SOBOL_BATCH = 2048
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
@@ -60,12 +60,14 @@ class Search:
     def __init__(self, plant: TransferFunction, controller, requirements: dict, objectives: tuple[str, ...],
                  settings: Settings, eval_options: EvalOptions,
                  on_batch: Callable[[pd.DataFrame, dict], None] | None = None,
-                 on_progress: Callable[[Progress], None] | None = None):
+                 on_progress: Callable[[Progress], None] | None = None, models=None):
         self.plant = plant
+        self.models = models if models is not None and not models.trivial else None   # synth.models.ModelSet
         self.requirements = dict(requirements)
         self.objectives = tuple(objectives)
         self.settings = settings
-        self.space: Space = build_space(plant, controller, self.requirements)
+        self.space: Space = (build_space(plant, controller, self.requirements) if self.models is None
+                             else build_space_models(self.models, controller, self.requirements))
         self.options = EvalOptions(settling_band=eval_options.settling_band,
                                    pade_order=eval_options.pade_order, screen=True)
         self.on_batch = on_batch
@@ -123,7 +125,13 @@ class Search:
         model sets and for where the work runs)."""
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            return evaluate(self.plant, self.space.family, params, self.requirements, self.options)
+            if self.models is not None:   # nominal screen first, then every model for the survivors
+                from ..evaluate.robust import evaluate_models
+                return evaluate_models(self.models, self.space.family, params, self.requirements, self.options,
+                                       self.objectives)
+            df = evaluate(self.plant, self.space.family, params, self.requirements, self.options)
+            df["robust_stable"] = df["internally_stable"]
+            return df
 
     def _elapsed(self) -> float:
         return self.state.get("search_s_before", 0.0) + (_time.perf_counter() - self._t0)

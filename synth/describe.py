@@ -246,8 +246,8 @@ def format_record(rec: dict, title: str = "") -> str:
 def _models_text(rec: dict) -> list[str]:
     """The model-set part of a record: robust verdict, worst cases and each model's values."""
     rc = rec["robust_certificate"]
-    out = [f"robust      {'ROBUSTLY STABLE' if rec['robust_stable'] else 'NOT robustly stable'} over "
-           f"{rec['model_set']}"]
+    out = textwrap.wrap(f"{'ROBUSTLY STABLE' if rec['robust_stable'] else 'NOT robustly stable'} over "
+                        f"{rec['model_set']}", 100, initial_indent="robust      ", subsequent_indent="            ")
     out += textwrap.wrap(rc["text"], 100, initial_indent="            ", subsequent_indent="            ")
     if rc.get("destabilising"):
         d = rc["destabilising"]

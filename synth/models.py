@@ -243,7 +243,8 @@ class ModelSet:
                          f"({', '.join(n for n, _ in self.variants)})")
         if self.box is not None and self.box.k:
             _, how = self.vertex_bits()
-            parts.append(how)
+            parts.append(how + " (named by bits, 1 = high end, over the interval coefficients: numerator "
+                         "then denominator, descending powers)")
             parts.append(f"{self.samples} interior samples (scrambled Sobol, seed 1)")
         text = ", ".join(parts)
         if self.box is not None and self.box.k:

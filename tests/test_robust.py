@@ -115,6 +115,77 @@ def test_routh_screen_matches_roots(deg, seed):
 # do not suffice in general; Barmish & Kang, Automatica 29, 1993, survey such counterexamples).
 
 
+# ------------------------------------------------------------------ vertices stable, a segment not
+# Constructed for this test (a random search over second-order controllers, then rounded to three
+# decimals and recomputed here with numpy roots): all 16 vertices of the box give stable loops,
+# yet a point on the extremal segment [K1, K3] of N (with K1 of D) is unstable. Vertices do not
+# suffice for interval plants in general (Chapellat & Bhattacharyya, IEEE TAC 34, 1989; see the
+# counterexamples surveyed by Barmish & Kang, Automatica 29, 1993); this is our own instance.
+EX_BOX = CoefficientBox(np.array([0.553, 3.036]), np.array([0.824, 5.068]),
+                        np.array([1.0, -1.755, 6.771]), np.array([1.0, -0.815, 10.857]))
+EX_NC = np.array([13.217, 171.593, 507.932])
+EX_DC = np.array([1.0, 12.664, -42.56])
+
+
+def test_vertices_stable_segment_unstable_is_refused():
+    box = EX_BOX
+    f = box.free
+    assert f.size == 4
+    for bits in itertools.product([0, 1], repeat=4):
+        num, den = box.split(box.corner(bits))
+        ch = np.polyadd(np.convolve(EX_DC, den), np.convolve(EX_NC, num))
+        assert np.max(np.roots(ch).real) < -1e-3            # every vertex stable (numpy oracle)
+    cert = box_certificate(box, EX_NC, EX_DC)
+    assert not cert["robust_stable"]
+    d = cert["destabilising"]
+    assert "segment" in d["model"]
+    # numpy oracle: a dense sweep of the named kind of segment finds an unstable point
+    lam = np.linspace(0, 1, 401)
+    kn = kharitonov_vertices(box.num_lo, box.num_hi)
+    kd = kharitonov_vertices(box.den_lo, box.den_hi)
+    worst = max(np.max(np.roots(np.polyadd(np.convolve(EX_DC, kd[0]),
+                                           np.convolve(EX_NC, (1 - t) * kn[0] + t * kn[2]))).real) for t in lam)
+    assert worst > 1e-3
+    assert not box_stable_screen(box, EX_NC[None, :], EX_DC[None, :])[0]
+
+
+def test_check_reports_not_robust_with_destabilising_model(tmp_path):
+    import json
+    from typer.testing import CliRunner
+    from synth.cli import app
+    spec = tmp_path / "ex.toml"
+    spec.write_text("""
+[plant]
+numerator = [0.6885, 4.052]
+denominator = [1.0, -1.285, 8.814]
+[plant.intervals]
+numerator = [[0.553, 0.824], [3.036, 5.068]]
+denominator = [1.0, [-1.755, -0.815], [6.771, 10.857]]
+[controller]
+kind = "lead-lag"
+stages = ["lead"]
+[requirements]
+min_damping = 0.0
+""")
+    c = "(13.217*s^2 + 171.593*s + 507.932)/(s^2 + 12.664*s - 42.56)"
+    r = CliRunner().invoke(app, ["check", str(spec), "--controller", c, "--json"])
+    assert r.exit_code == 0, r.output
+    rec = json.loads(r.output)
+    assert rec["internally_stable"] is True and rec["robust_stable"] is False and rec["feasible"] is False
+    assert "segment" in rec["robust_certificate"]["destabilising"]["model"]
+    r2 = CliRunner().invoke(app, ["check", str(spec), "--controller", c])
+    assert "NOT robustly stable" in r2.output and "destabilising model" in r2.output
+
+
+def test_spec_error_exit_2(tmp_path):
+    from typer.testing import CliRunner
+    from synth.cli import app
+    spec = tmp_path / "bad.toml"
+    spec.write_text(BASE.replace("numerator = [[4.0, 6.0]]", "numerator = [[6.0, 4.0]]"))
+    r = CliRunner().invoke(app, ["check", str(spec), "--controller", "1"])
+    assert r.exit_code == 2 and "[plant.intervals].numerator[0]" in r.output and "Traceback" not in r.output
+
+
 # ------------------------------------------------------------------ hypothesis cross-check
 def _sample_unstable(box: CoefficientBox, nc, dc, rng, n=400) -> bool:
     """Dense random sampling of the box plus sweeps along every extremal segment (numpy roots)."""

@@ -57,7 +57,7 @@ from ..requirements import REQUIREMENTS, requirement_value, slack
 from . import stability
 from .core import EvalOptions, evaluate, evaluate_controllers
 
-CERTIFICATE_METHOD = ("generalized Kharitonov theorem (Chapellat & Bhattacharyya 1989): 32 extremal segments, "
+CERTIFICATE_METHOD = ("generalized Kharitonov theorem (Chapellat & Bhattacharyya 1989): the extremal segments (at most 32), "
                       "each certified by the sign of the Hurwitz determinant H_{n-1} along the segment "
                       "(Bialas 1985; Orlando's formula), exact Sturm count in rational arithmetic")
 

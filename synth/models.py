@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from fractions import Fraction
 from functools import cached_property
 
 import numpy as np
@@ -282,32 +283,37 @@ def _interval_list(reader, value, table, key, nominal: list) -> tuple[np.ndarray
     return np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
 
 
-def _down(x):
-    return np.nextafter(x, -np.inf)
-
-
-def _up(x):
-    return np.nextafter(x, np.inf)
+def _outward(fr: Fraction, down: bool) -> float:
+    """The float nearest to an exact rational, moved one ulp outward when rounding went inward."""
+    x = float(fr)
+    if down and Fraction(x) > fr:
+        x = float(np.nextafter(x, -np.inf))
+    elif not down and Fraction(x) < fr:
+        x = float(np.nextafter(x, np.inf))
+    return x
 
 
 def interval_poly_product(factors: list[tuple[np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray]:
     """Enclosure of the product of interval polynomials (descending), outward rounded.
 
-    Interval arithmetic (Moore, *Interval Analysis*, 1966): each product coefficient
-    is a sum of products of intervals; every floating-point result is rounded one
-    ulp outward, so the true coefficient set lies inside the returned box.
+    Interval arithmetic (Moore, *Interval Analysis*, 1966) carried out exactly in
+    rational arithmetic (every float is a dyadic rational), each end point then
+    rounded outward to a float, so the true coefficient set lies inside the box and
+    exact coefficients (a fixed leading 1) stay exact.
     """
-    lo, hi = np.ones(1), np.ones(1)
+    lo, hi = [Fraction(1)], [Fraction(1)]
     for flo, fhi in factors:
-        n = lo.size + flo.size - 1
-        nlo, nhi = np.zeros(n), np.zeros(n)
-        for i in range(lo.size):
-            for j in range(flo.size):
-                prods = [lo[i] * flo[j], lo[i] * fhi[j], hi[i] * flo[j], hi[i] * fhi[j]]
-                nlo[i + j] = _down(nlo[i + j] + _down(min(prods)))
-                nhi[i + j] = _up(nhi[i + j] + _up(max(prods)))
+        a = [Fraction(float(x)) for x in flo]
+        b = [Fraction(float(x)) for x in fhi]
+        n = len(lo) + len(a) - 1
+        nlo, nhi = [Fraction(0)] * n, [Fraction(0)] * n
+        for i in range(len(lo)):
+            for j in range(len(a)):
+                prods = [lo[i] * a[j], lo[i] * b[j], hi[i] * a[j], hi[i] * b[j]]
+                nlo[i + j] += min(prods)
+                nhi[i + j] += max(prods)
         lo, hi = nlo, nhi
-    return lo, hi
+    return (np.array([_outward(x, True) for x in lo]), np.array([_outward(x, False) for x in hi]))
 
 
 def _root_factors(reader, value, table, key, roots_raw: list) -> list[tuple[np.ndarray, np.ndarray]]:

@@ -205,7 +205,7 @@ def load_candidates(run: Run, df: pd.DataFrame, ids: Sequence[int] | None) -> li
         row = find_row(run, df, cid)
         c = controller_of(run, row)
         rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                               spec.options.pade_order)
+                               spec.options.pade_order, models=spec.models)
         steps = None
         if rec["internally_stable"]:
             try:
@@ -907,6 +907,8 @@ def report_data(run: Run, ids: Sequence[int] | None = None) -> ReportData:
             complex_plane_data(cands, spec.plant, reqs, fr),
             pole_map_data(cands, spec.plant, reqs),
             tradeoff_data(df, list(spec.objectives), cands)]
+    from .report_models import model_set_figures      # model sets: envelopes and pole map of all models
+    figs += model_set_figures(cands, spec.models, reqs, spec.options.pade_order, fr)
     return ReportData(run, df, cands, figs)
 
 

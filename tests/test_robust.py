@@ -357,3 +357,26 @@ def test_model_set_members_are_deterministic():
     for m in s1.models.members[2:]:
         d = np.pad(m.plant.den, (box.den_lo.size - m.plant.den.size, 0))
         assert np.all(d >= box.den_lo) and np.all(d <= box.den_hi)
+
+
+def test_screen_agrees_with_certificate_on_wide_coefficient_scales():
+    # maglev-like box (coefficients from 1 to 2.4e5, gain 2e6): the float screen must follow the
+    # exact certificate over a sweep of controller gains (a scaling bug once flagged every row)
+    s = parse_spec(open("specs/maglev_robust.toml").read(), source="maglev_robust.toml")
+    box = s.models.box
+    agree, stable = 0, 0
+    for k in np.logspace(np.log10(0.5), np.log10(60), 25):
+        nc = k * np.poly([-32.7, -149.0])
+        dc = np.poly([-190.0, -353.0])
+        exact = box_certificate(box, nc, dc)["robust_stable"]
+        agree += bool(box_stable_screen(box, nc[None, :], dc[None, :])[0]) == exact
+        stable += exact
+    assert agree == 25 and 0 < stable < 25
+
+
+def test_example_spec_is_labelled_and_loads():
+    text = open("specs/maglev_robust.toml").read()
+    assert text.startswith("# INVENTED SCENARIO")
+    s = parse_spec(text, source="specs/maglev_robust.toml")
+    assert s.models.box.k == 4 and [n for n, _ in s.models.variants] == ["slow-coil-driver", "sensor-delay-0.5ms"]
+    assert s.models.variants[1][1].delay == 0.0005

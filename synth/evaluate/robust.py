@@ -190,11 +190,11 @@ def box_stable_screen(box: CoefficientBox, cnum: np.ndarray, cden: np.ndarray) -
     xr = batch_roots(g)
     real = ~np.isnan(xr) & (np.abs(xr.imag) <= 1e-6 * np.maximum(np.abs(xr), 1e-300)) & (xr.real > 0)
     x = np.where(real, xr.real, 0.0)
-    hv = np.zeros_like(x)
+    hv, habs = np.zeros_like(x), np.zeros_like(x)
     for j in range(h.shape[1]):
         hv = hv * x + h[:, j:j + 1]
-    scale = np.abs(h) @ np.ones(h.shape[1])
-    cross = real & (hv <= 1e-9 * np.maximum(np.abs(x), 1.0) ** (h.shape[1] - 1) * scale[:, None])
+        habs = habs * x + np.abs(h[:, j:j + 1])
+    cross = real & (hv <= 1e-9 * habs)        # Re(p0 conj p1) <= 0 up to rounding: a crossing on the segment
     ok[idx] = ~cross.any(axis=1).reshape(m, s).any(axis=1)
     return ok
 

@@ -105,16 +105,18 @@ def per_candidate(spec, n, reps):
             best = min(best, time.perf_counter() - t)
         return best
     t_nom = timeit(lambda: evaluate(spec.plant, sp.family, params, reqs, opts))
+    t_nom0 = timeit(lambda: evaluate(spec.plant, sp.family, params, {}, opts))
     surv = int(evaluate(spec.plant, sp.family, params, reqs, opts)["feasible"].sum())
     for k, ms in model_sets(spec).items():
         if ms is None:
-            rows.append((k, len(params), surv, t_nom, t_nom))
+            rows.append((k, len(params), surv, t_nom, t_nom0, len(params)))
             continue
         t_s = timeit(lambda: evaluate_models(ms, sp.family, params, reqs, opts, tuple(spec.objectives)))
         # every model for every candidate: no requirement gates the nominal stage
         t_a = timeit(lambda: evaluate_models(ms, sp.family, params, {}, opts, tuple(spec.objectives)))
-        rows.append((k, len(params), surv, t_s, t_a))
-    return t_nom, rows
+        full = int(evaluate_models(ms, sp.family, params, {}, opts, tuple(spec.objectives))["models_complete"].sum())
+        rows.append((k, len(params), surv, t_s, t_a, full))
+    return (t_nom, t_nom0), rows
 
 
 def search(spec, models, seconds, budget):
@@ -138,13 +140,17 @@ def main(argv=None) -> int:
            f"{' --quick' if a.quick else ''}`.", ""]
     with threadpool_limits(limits=1, user_api="blas"):
         spec = parse_spec(THIRD_ORDER, "third_order_two_lead")
-        t_nom, rows = per_candidate(spec, n, reps)
+        (t_nom, t_nom0), rows = per_candidate(spec, n, reps)
         out += ["## (1) Evaluation cost per model-set size", "",
-                f"{rows[0][1]} candidates after the prefilter, {rows[0][2]} feasible on the nominal.", "",
-                "| models | search way: cand/s | x nominal | all models, every candidate: cand/s | x nominal |",
-                "| ---: | ---: | ---: | ---: | ---: |"]
-        for k, m, _, ts, ta in rows:
-            out.append(f"| {k} | {m / ts:,.0f} | {ts / t_nom:.1f} | {m / ta:,.0f} | {ta / t_nom:.1f} |")
+                f"{rows[0][1]} candidates after the prefilter, {rows[0][2]} feasible on the nominal "
+                "(with the requirements). Left: the search's way (requirements on, nominal gate). Right: "
+                "requirements dropped, so every candidate stable on the nominal and passing the box screen "
+                "is evaluated on every model (count in the last column); both against the nominal-only "
+                "evaluation of the same batch with the same requirement set.", "",
+                "| models | search way: cand/s | x nominal | no gate: cand/s | x nominal | rows on all models |",
+                "| ---: | ---: | ---: | ---: | ---: | ---: |"]
+        for k, m, _, ts, ta, full in rows:
+            out.append(f"| {k} | {m / ts:,.0f} | {ts / t_nom:.1f} | {m / ta:,.0f} | {ta / t_nom0:.1f} | {full} |")
         out.append("")
 
         # (2) target: 16-vertex box + one variant

@@ -95,6 +95,7 @@ def model_set_figures(cands, model_set, requirements: dict, pade_order: int, fre
     pole_panel = Panel(title="closed-loop poles, all models", xlabel="real part (1/s)", ylabel="imaginary part (rad/s)")
     colors = {"nominal": "#000000", "variant": "#D55E00", "vertex": "#0072B2", "sample": "#9a9a9a"}
     markers = {"nominal": "o", "variant": "s", "vertex": "x", "sample": "."}
+    span = []
     for kind in ("sample", "vertex", "variant", "nominal"):
         pts = []
         for m in model_set.members:
@@ -104,11 +105,16 @@ def model_set_figures(cands, model_set, requirements: dict, pade_order: int, fre
             ch = stability.characteristic(rp.num, rp.den, ctrl.num[None, :], ctrl.den[None, :])
             p = stability.closed_loop_poles(ch)[0]
             pts.append(p[~np.isnan(p)])
+            if not m.plant.delay:
+                span.append(np.abs(p[~np.isnan(p)]).max(initial=0.0))
         if pts:
             p = np.concatenate(pts)
             pole_panel.points.append(Points(f"{kind} model poles", p.real, p.imag, "model_pole",
                                             marker=markers[kind], color=colors[kind], size=18 if kind != "nominal" else 30))
-    pole_panel.legend = "right"
+    if span and any(m.plant.delay for m in model_set.members):   # Padé poles of dead-time models: off-scale
+        r = 1.15 * max(span)
+        pole_panel.xlim, pole_panel.ylim = (-r, 0.1 * r), (-r, r)
+        pole_panel.notes.append(f"Padé poles of dead-time models beyond |s| = {r:.3g} not shown")
     note = ("stability over the coefficient box certified (generalized Kharitonov); these curves sample it"
             if model_set.box is not None and model_set.box.k else "every model shown")
     cap = (f"Candidate #{c.cid} on {model_set.describe()}. Dashed grey: pointwise min and max over the models "

@@ -380,3 +380,40 @@ def test_example_spec_is_labelled_and_loads():
     s = parse_spec(text, source="specs/maglev_robust.toml")
     assert s.models.box.k == 4 and [n for n, _ in s.models.variants] == ["slow-coil-driver", "sensor-delay-0.5ms"]
     assert s.models.variants[1][1].delay == 0.0005
+
+
+def test_whole_loop_on_a_model_set(tmp_path):
+    """design -> table -> show -> export -> tighten -> check on a spec with intervals and a variant."""
+    import json
+    from typer.testing import CliRunner
+    from synth.cli import app
+    from synth.export import read_design
+    spec = tmp_path / "lag.toml"
+    spec.write_text(BASE + "\n[search]\nbudget = 400\ntime_limit_s = 20\n")
+    run = tmp_path / "run"
+    cli = CliRunner()
+    r = cli.invoke(app, ["design", str(spec), "--out", str(run), "--json", "--top", "3"])
+    assert r.exit_code == 0, r.output
+    rows = json.loads(r.output)["rows"]
+    assert rows and all("robust_stable" in x for x in rows)
+    feas = [x for x in rows if x["feasible"]]
+    assert feas, "the seeds of this spec include robustly stable, feasible designs"
+    assert all(x["robust_stable"] for x in feas)            # every shown feasible design is certified
+    cid = str(feas[0]["id"])
+    rec = json.loads(cli.invoke(app, ["show", str(run), cid, "--json"]).output)
+    assert rec["robust_stable"] and len(rec["models"]) == 82
+    for key, req in rec["requirements"].items():           # worst case = the named model's value
+        named = next(m for m in rec["models"] if m["name"] == req["worst_model"])
+        assert named["values"][key] == req["value"]
+        vals = [m["values"][key] for m in rec["models"]]
+        assert req["value"] == (max(vals) if key.startswith("max_") else min(vals))
+    out = tmp_path / "d.csv"
+    assert cli.invoke(app, ["export", str(run), cid, "-o", str(out)]).exit_code == 0
+    text = out.read_text()
+    assert "model_set" in text and "generalized Kharitonov" in text
+    read_design(out)
+    r = cli.invoke(app, ["tighten", str(run), "--set", "max_overshoot_pct=28", "--out", str(tmp_path / "t"),
+                         "--budget", "100", "--json"])
+    assert r.exit_code == 0, r.output
+    from synth.runs import open_run
+    assert open_run(tmp_path / "t").spec.models == open_run(run).spec.models

@@ -417,3 +417,30 @@ def test_whole_loop_on_a_model_set(tmp_path):
     assert r.exit_code == 0, r.output
     from synth.runs import open_run
     assert open_run(tmp_path / "t").spec.models == open_run(run).spec.models
+
+
+def test_report_envelopes_contain_every_model_scipy_step():
+    # outside reference: scipy.signal.step of each model's closed loop T = L/(1+L) lies inside the
+    # drawn envelope (up to the display interpolation), and the pole map holds every model's poles
+    import scipy.signal as sig
+    from synth.describe import check_controller
+    from synth.report import Candidate
+    from synth.report_models import model_set_figures
+    box = CoefficientBox(np.array([4.5]), np.array([5.5]), np.array([0.05, 0.95, 0.3, -3.3]),
+                         np.array([0.05, 1.1, 0.4, -2.8]))
+    nom = TransferFunction(np.array([5.0]), np.array([0.05, 1.025, 0.35, -3.0]))
+    ms = ModelSet(nom, (), box, samples=4)
+    c = TransferFunction(26.9132 * np.poly([-3.4396, -3.4396]), np.poly([-10.899, -10.899]))
+    rec = check_controller(nom, c, {"max_overshoot_pct": 40.0}, models=ms)
+    assert rec["robust_stable"]
+    fd = model_set_figures([Candidate(1, "chosen", 0, 1, c, rec, None)], ms, {}, 6, (0.01, 1000))[0]
+    step = fd.panels[0]
+    lo, hi = step.curves[0], step.curves[1]
+    for m in ms.members:
+        num = np.convolve(c.num, m.plant.num)
+        den = np.polyadd(np.convolve(c.den, m.plant.den), num)
+        _, y = sig.step((num, den), T=lo.x)
+        span = hi.y.max() - lo.y.min()
+        assert np.all(y >= lo.y - 0.02 * span) and np.all(y <= hi.y + 0.02 * span)
+    n_poles = sum(len(p.x) for p in fd.panels[2].points)
+    assert n_poles == len(ms.members) * 5          # 3 plant + 2 controller poles per model

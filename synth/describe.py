@@ -119,8 +119,12 @@ def robust_record(rec: dict, models, controller: TransferFunction, requirements:
     for key, limit in requirements.items():
         j = min(range(len(per_model)), key=lambda i: per_model[i]["slack"][key])
         s = per_model[j]["slack"][key]
-        reqs[key] = {"value": per_model[j]["values"][key], "limit": float(limit), "slack": s, "met": s >= 0,
-                     "worst_model": per_model[j]["name"], "nominal_value": per_model[0]["values"][key]}
+        tol = 1e-9 * max(abs(float(limit)), abs(s), 1e-12)
+        ties = [i for i, p in enumerate(per_model) if abs(p["slack"][key] - s) <= tol] if np.isfinite(s) else [j]
+        name = per_model[ties[0]]["name"] + (f" (tied with {len(ties) - 1} other models)" if len(ties) > 1 else "")
+        reqs[key] = {"value": per_model[ties[0]]["values"][key], "limit": float(limit), "slack": s, "met": s >= 0,
+                     "worst_model": name, "worst_model_name": per_model[ties[0]]["name"],
+                     "nominal_value": per_model[0]["values"][key]}
     texts, destab = [], None
     bad_variant = [p["name"] for p in per_model if p["kind"] == "variant" and not (p["stable"] and p["certified"])]
     ok = bool(rec["certified"]) and not bad_variant
@@ -253,7 +257,8 @@ def _models_text(rec: dict) -> list[str]:
         d = rc["destabilising"]
         out.append(f"            destabilising model: {d['model']}"
                    + (f"  N = {d['numerator']}, D = {d['denominator']}" if "numerator" in d else ""))
-    out.append(f"            {rc['performance']}; requirement values below are worst cases")
+    out += textwrap.wrap(f"{rc['performance']}; requirement values below are worst cases", 100,
+                         initial_indent="            ", subsequent_indent="            ")
     out.append("")
     keys = list(rec["requirements"])
     if keys:

@@ -409,7 +409,7 @@ def test_whole_loop_on_a_model_set(tmp_path):
     rec = json.loads(cli.invoke(app, ["show", str(run), cid, "--json"]).output)
     assert rec["robust_stable"] and len(rec["models"]) == 82
     for key, req in rec["requirements"].items():           # worst case = the named model's value
-        named = next(m for m in rec["models"] if m["name"] == req["worst_model"])
+        named = next(m for m in rec["models"] if m["name"] == req["worst_model_name"])
         assert named["values"][key] == req["value"]
         vals = [m["values"][key] for m in rec["models"]]
         assert req["value"] == (max(vals) if key.startswith("max_") else min(vals))

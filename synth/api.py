@@ -102,7 +102,7 @@ def check_record(spec: Spec, controller) -> dict:
     from .describe import check_controller
     c = parse_controller(controller)
     return check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                            spec.options.pade_order)
+                            spec.options.pade_order, models=spec.models)
 
 
 def check(spec, controller) -> dict:

@@ -42,11 +42,14 @@ def jsonable(x: Any) -> Any:
 
 def check_controller(plant: TransferFunction, controller: TransferFunction,
                      requirements: Mapping[str, float], settling_band: float = 0.02,
-                     pade_order: int = 6) -> dict:
+                     pade_order: int = 6, models=None) -> dict:
     """Evaluate one controller against the requirements and certify it exactly.
 
     Returns a record: every metric, ``requirements: {key: {value, limit, slack, met}}``,
-    ``controller`` (gain, zeros, poles, numerator, denominator), ``certificate``.
+    ``controller`` (gain, zeros, poles, numerator, denominator), ``certificate``,
+    ``robust_stable``. With a non-trivial ``models`` (:class:`synth.models.ModelSet`) the
+    requirement values are the worst case over the models, each naming the model that
+    sets it, and ``models``, ``robust_certificate`` are added (see :func:`robust_record`).
     """
     from .evaluate import EvalOptions, METRICS, evaluate_controllers, stability   # heavy: import on use
     from .evaluate.core import EXTRA_FREQUENCIES
@@ -76,6 +79,7 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     rec["requirements"] = reqs
     rec["feasible"] = bool(row["feasible"])
     rec["controller"] = controller_record(controller)
+    rec["robust_stable"] = certified
     text = cert["text"]
     if plant.delay:
         text = (f"dead time {plant.delay:g} s: Nyquist criterion on the exact frequency response: "
@@ -83,6 +87,73 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
                 f"Padé approximant of order {pade_order}; {text} (on the Padé characteristic polynomial)")
     rec["certificate"] = {"text": text, "routh_hurwitz": cert["hurwitz"],
                           "decay_rate_certified": cert["decay_rate_certified"]}
+    if models is not None and not models.trivial:
+        rec = robust_record(rec, models, controller, requirements, opts)
+    return rec
+
+
+def robust_record(rec: dict, models, controller: TransferFunction, requirements: Mapping[str, float],
+                  opts: EvalOptions) -> dict:
+    """Extend a nominal check record over a model set: each model's requirement values, the worst case
+    (and the model that sets it) per requirement, ``robust_stable`` and its certificate.
+
+    Stability: nominal and variants as for a single plant (exact Routh; Nyquist with dead
+    time), the coefficient box by the generalized Kharitonov theorem
+    (:func:`synth.evaluate.robust.box_certificate`). Performance: judged on the listed
+    models only (vertices and interior samples): sampled, not certified.
+    """
+    from .evaluate.robust import CERTIFICATE_METHOD, box_certificate
+    from .evaluate import METRICS, EvalOptions, evaluate_controllers, stability   # heavy: import on use
+    from .evaluate.core import EXTRA_FREQUENCIES
+    opts = EvalOptions(settling_band=opts.settling_band, pade_order=opts.pade_order, certify=True)
+    per_model = []
+    for m in models.members:
+        row = (evaluate_controllers(m.plant, controller.num[None, :], controller.den[None, :], requirements, opts)
+               .iloc[0])
+        vals = {k: float(requirement_value(REQUIREMENTS[k], row.to_dict())) for k in requirements}
+        per_model.append({"name": m.name, "kind": m.kind, "stable": bool(row["internally_stable"]),
+                          "certified": bool(row["certified"]), "values": vals,
+                          "slack": {k: float(row[f"slack_{k}"]) for k in requirements},
+                          "numerator": list(m.plant.num), "denominator": list(m.plant.den),
+                          "delay_s": m.plant.delay})
+    reqs = {}
+    for key, limit in requirements.items():
+        j = min(range(len(per_model)), key=lambda i: per_model[i]["slack"][key])
+        s = per_model[j]["slack"][key]
+        tol = 1e-9 * max(abs(float(limit)), abs(s), 1e-12)
+        ties = [i for i, p in enumerate(per_model) if abs(p["slack"][key] - s) <= tol] if np.isfinite(s) else [j]
+        name = per_model[ties[0]]["name"] + (f" (tied with {len(ties) - 1} other models)" if len(ties) > 1 else "")
+        reqs[key] = {"value": per_model[ties[0]]["values"][key], "limit": float(limit), "slack": s, "met": s >= 0,
+                     "worst_model": name, "worst_model_name": per_model[ties[0]]["name"],
+                     "nominal_value": per_model[0]["values"][key]}
+    texts, destab = [], None
+    bad_variant = [p["name"] for p in per_model if p["kind"] == "variant" and not (p["stable"] and p["certified"])]
+    ok = bool(rec["certified"]) and not bad_variant
+    texts.append("nominal: " + ("certified stable" if rec["certified"] else "NOT certified stable"))
+    if models.variants:
+        texts.append("variants: " + ("all certified stable (exact Routh-Hurwitz; Nyquist with dead time)"
+                                     if not bad_variant else f"NOT stable: {', '.join(bad_variant)}"))
+        if bad_variant and destab is None:
+            destab = {"model": f"variant {bad_variant[0]}"}
+    box = None
+    if models.box is not None and models.box.k:
+        box = box_certificate(models.box, controller.num, controller.den)
+        ok &= box["robust_stable"]
+        texts.append("coefficient box: " + box["text"])
+        if not box["robust_stable"] and destab is None:
+            destab = box["destabilising"]
+    rec = dict(rec)
+    rec["requirements"] = reqs
+    rec["robust_stable"] = bool(ok)
+    rec["feasible"] = bool(ok and all(r["met"] for r in reqs.values()))
+    rec["models"] = per_model
+    rec["model_set"] = models.describe()
+    rec["robust_certificate"] = {"robust_stable": bool(ok), "text": "; ".join(texts),
+                                 "method": CERTIFICATE_METHOD if box is not None else
+                                 "exact Routh-Hurwitz per model (no coefficient box)",
+                                 "destabilising": destab,
+                                 "performance": f"worst case over the {len(per_model)} listed models: sampled "
+                                                "inside the box, not certified"}
     return rec
 
 
@@ -181,6 +252,8 @@ def format_record(rec: dict, title: str = "") -> str:
                    + ("" if all(met) else f"; failing: {', '.join(k for k, r in rec['requirements'].items() if not r['met'])}"))
     out.append(f"certificate {rec['certificate']['text']}")
     out.append("")
+    if "models" in rec:
+        out += _models_text(rec)
     if rec["requirements"]:
         out.append(f"{'requirement':<34}{'value':>12}{'limit':>12}{'slack':>12}  met")
         for key, r in rec["requirements"].items():
@@ -203,3 +276,32 @@ def format_record(rec: dict, title: str = "") -> str:
     out.append("")
     out += textwrap.wrap(CAUTION, 100)
     return "\n".join(out)
+
+
+def _models_text(rec: dict) -> list[str]:
+    """The model-set part of a record: robust verdict, worst cases and each model's values."""
+    rc = rec["robust_certificate"]
+    out = textwrap.wrap(f"{'ROBUSTLY STABLE' if rec['robust_stable'] else 'NOT robustly stable'} over "
+                        f"{rec['model_set']}", 100, initial_indent="robust      ", subsequent_indent="            ")
+    out += textwrap.wrap(rc["text"], 100, initial_indent="            ", subsequent_indent="            ")
+    if rc.get("destabilising"):
+        d = rc["destabilising"]
+        out.append(f"            destabilising model: {d['model']}"
+                   + (f"  N = {d['numerator']}, D = {d['denominator']}" if "numerator" in d else ""))
+    out += textwrap.wrap(f"{rc['performance']}; requirement values below are worst cases", 100,
+                         initial_indent="            ", subsequent_indent="            ")
+    out.append("")
+    keys = list(rec["requirements"])
+    if keys:
+        out.append(f"{'worst case':<34}{'value':>12}{'nominal':>12}  set by")
+        for k in keys:
+            r = rec["requirements"][k]
+            out.append(f"{k:<34}{fmt_num(r['value']):>12}{fmt_num(r['nominal_value']):>12}  {r['worst_model']}")
+        out.append("")
+        short = [k.replace("max_", "").replace("min_", "")[:11] for k in keys]
+        out.append(f"{'model':<22}{'stable':>7}" + "".join(f"{s:>12}" for s in short))
+        for m in rec["models"]:
+            out.append(f"{m['name'][:22]:<22}{('yes' if m['stable'] else 'NO'):>7}"
+                       + "".join(f"{fmt_num(m['values'][k]):>12}" for k in keys))
+        out.append("")
+    return out

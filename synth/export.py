@@ -94,7 +94,7 @@ EXPORT_FORMAT = 2       # 1: '#' comment lines before the header; 2: plain RFC 4
 METHODS = ("tustin", "zoh")
 SLOW_SAMPLING = 0.3     # w_c T above which sampling counts as slow (common-practice rule of thumb)
 
-_NESTED = {"requirements", "controller", "certificate", "closed_loop_poles", "pid_forms", "stages"}
+_NESTED = {"requirements", "controller", "certificate", "closed_loop_poles", "pid_forms", "stages", "model_set"}
 _BOOL_NOTE = "boolean: 1 yes, 0 no"
 
 
@@ -223,6 +223,11 @@ def _design_rows(path, plant, controller, record, spec_name, requirements, sampl
     ]
     if cert:
         rows.append(item("design", "certificate", value=bool(cert.get("routh_hurwitz")), note=cert.get("text", "")))
+    if "robust_certificate" in record:   # a model set: what was checked, and how stability was proved
+        rc = record["robust_certificate"]
+        rows.append(item("design", "model_set", note=record.get("model_set", "")))
+        rows.append(item("design", "robust_certificate", value=bool(rc["robust_stable"]),
+                         note=f"{rc['method']}; {rc['text']}; {rc['performance']}"))
     if settling_band is not None:
         rows.append(item("design", "settling_band", value=settling_band,
                          note="settling band as a fraction of the final value"))

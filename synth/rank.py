@@ -80,8 +80,9 @@ def _flag(df: pd.DataFrame, col: str, default: bool | None = None) -> np.ndarray
 
 
 def _ok_mask(df: pd.DataFrame) -> np.ndarray:
-    """internally_stable AND admissible (when present)."""
-    return _flag(df, "internally_stable") & _flag(df, "admissible", default=True)
+    """internally_stable AND admissible AND, for model sets, robust_stable and models_complete (when present)."""
+    return (_flag(df, "internally_stable") & _flag(df, "admissible", default=True)
+            & _flag(df, "robust_stable", default=True) & _flag(df, "models_complete", default=True))
 
 
 def _slacks(df: pd.DataFrame, requirements: Mapping[str, float], stable: np.ndarray) -> dict[str, np.ndarray]:
@@ -414,7 +415,7 @@ def rank(df: pd.DataFrame, requirements: Mapping[str, float], objectives: Sequen
     n = len(out)
 
     stable = _flag(out, "internally_stable")
-    ok = stable & _flag(out, "admissible", default=True)
+    ok = _ok_mask(out)
     slacks = _slacks(out, requirements, stable)
     feasible = ok.copy()
     for s in slacks.values():

@@ -150,7 +150,7 @@ def make_search(spec: Spec, settings, on_batch=None, on_progress=None, executor=
     from .search.explore import Search
     return Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives, settings,
                   EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order),
-                  on_batch=on_batch, on_progress=on_progress, executor=executor)
+                  on_batch=on_batch, on_progress=on_progress, executor=executor, models=spec.models)
 
 
 def space_manifest(search) -> dict:
@@ -295,16 +295,28 @@ def family_of(run: Run):
     return build_space(run.spec.plant, run.spec.controller, dict(run.spec.requirements)).family
 
 
+def evaluate_spec(spec: Spec, fam, params: np.ndarray, opts):
+    """Evaluate on the spec's plant, or worst-case over its model set (box certified exactly when certifying)."""
+    from .evaluate import evaluate
+    if spec.models is None:
+        df = evaluate(spec.plant, fam, params, dict(spec.requirements), opts)
+        df["robust_stable"] = df["certified"] if opts.certify else df["internally_stable"]
+        return df
+    from .evaluate.robust import evaluate_models
+    return evaluate_models(spec.models, fam, params, dict(spec.requirements), opts, tuple(spec.objectives),
+                           certify_box=opts.certify)
+
+
 def recheck(run: Run, rows):
     """Re-evaluate rows from their parameters with the exact certificate (for display/export)."""
-    from .evaluate import EvalOptions, evaluate
+    from .evaluate import EvalOptions
     fam = family_of(run)
     if rows.empty:
         return rows
     params = rows[fam.names].to_numpy(float)
     opts = EvalOptions(settling_band=run.spec.options.settling_band, pade_order=run.spec.options.pade_order,
                        certify=True)
-    df = evaluate(run.spec.plant, fam, params, dict(run.spec.requirements), opts)
+    df = evaluate_spec(run.spec, fam, params, opts)
     df.insert(0, "id", rows["id"].to_numpy())
     for c in ("rank", "front", "knee", "crowding", "violation"):
         if c in rows:

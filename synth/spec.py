@@ -22,6 +22,7 @@ import numpy as np
 
 from synth.expr import ExpressionError, parse_rational
 from synth.lti import TransferFunction, poly_from_roots
+from synth.models import DEFAULT_SAMPLES, MAX_SAMPLES, ModelSet, models_toml, parse_models
 from synth.requirements import REQUIREMENTS
 
 CONTROLLER_KINDS = ("lead-lag", "pid", "pi")
@@ -38,10 +39,10 @@ SEARCH_DEFAULTS = MappingProxyType({"budget": 20000, "time_limit_s": 30.0, "seed
 HIDDEN_MODE_REL_TOL = 1e-6
 
 _TABLE_KEYS = {
-    "plant": ("numerator", "denominator", "zeros", "poles", "gain", "transfer", "delay_s"),
+    "plant": ("numerator", "denominator", "zeros", "poles", "gain", "transfer", "delay_s", "intervals", "variants"),
     "controller": ("kind", "stages", "integrator", "frequency_range_rad_s", "max_stage_ratio", "gain_range"),
     "requirements": tuple(REQUIREMENTS) + ("settling_band",),
-    "options": ("settling_band", "pade_order"),
+    "options": ("settling_band", "pade_order", "robust_samples"),
     "objectives": ("minimize",),
     "search": ("budget", "time_limit_s", "seed"),
 }
@@ -74,6 +75,7 @@ class Options:
 
     settling_band: float = 0.02
     pade_order: int = 6
+    robust_samples: int = DEFAULT_SAMPLES     # interior samples of a coefficient box (synth.models)
 
 
 @dataclass(frozen=True, eq=False)
@@ -94,6 +96,7 @@ class Spec:
     warnings: tuple[str, ...]
     objectives: tuple[str, ...] = DEFAULT_OBJECTIVES
     search: Mapping[str, Any] = field(default_factory=lambda: SEARCH_DEFAULTS)
+    models: ModelSet | None = None        # nominal, variants, coefficient box (None: the nominal only)
 
     def __eq__(self, other):
         if not isinstance(other, Spec):
@@ -105,7 +108,8 @@ class Spec:
                 and dict(self.requirements) == dict(other.requirements)
                 and self.options == other.options
                 and self.objectives == other.objectives
-                and dict(self.search) == dict(other.search))
+                and dict(self.search) == dict(other.search)
+                and (self.models or ModelSet(a)) == (other.models or ModelSet(b)))
 
     __hash__ = None
 
@@ -132,6 +136,11 @@ class Spec:
                  "denominator": [float(x) for x in self.plant.den]}
         if self.plant.delay:
             plant["delay_s"] = self.plant.delay
+        intervals, variants = models_toml(self.models) if self.models is not None else (None, [])
+        if intervals is not None:   # the box is written over the nominal's full coefficient lists
+            plant["numerator"] = [0.0] * (len(intervals["numerator"]) - len(plant["numerator"])) + plant["numerator"]
+            plant["denominator"] = ([0.0] * (len(intervals["denominator"]) - len(plant["denominator"]))
+                                    + plant["denominator"])
         controller = {"kind": c.kind, "stages": list(c.stages), "integrator": c.integrator,
                       "frequency_range_rad_s": list(c.frequency_range_rad_s)}
         if c.max_stage_ratio is not None:
@@ -142,7 +151,9 @@ class Spec:
             "plant": plant,
             "controller": controller,
             "requirements": dict(self.requirements),
-            "options": {"settling_band": self.options.settling_band, "pade_order": self.options.pade_order},
+            "options": {"settling_band": self.options.settling_band, "pade_order": self.options.pade_order,
+                        **({"robust_samples": self.options.robust_samples}
+                           if self.options.robust_samples != DEFAULT_SAMPLES else {})},
             "objectives": {"minimize": list(self.objectives)},
             "search": dict(self.search),
         }
@@ -150,6 +161,10 @@ class Spec:
         lines = [f"# requirements written by synth from {origin}", f"name = {_toml_value(self.name)}"]
         for table, items in tables.items():
             lines += ["", f"[{table}]"] + [f"{k} = {_toml_value(v)}" for k, v in items.items()]
+            if table == "plant" and intervals is not None:
+                lines += ["", "[plant.intervals]"] + [f"{k} = {_toml_value(v)}" for k, v in intervals.items()]
+            for v in variants if table == "plant" else ():
+                lines += ["", "[[plant.variants]]"] + [f"{k} = {_toml_value(x)}" for k, x in v.items()]
         return "\n".join(lines) + "\n"
 
 
@@ -317,17 +332,20 @@ class _Reader:
         name = doc.get("name", Path(self.source).stem if not self.source.startswith("<") else "spec")
         if not isinstance(name, str) or not name.strip():
             raise self.error(None, "name", _got(name), "a non-empty string")
-        plant = self.plant(self.table(doc, "plant"))
+        plant_table = self.table(doc, "plant")
+        plant = self.plant(plant_table)
         controller = self.controller(self.table(doc, "controller"))
         reqs_table, opts_table = self.table(doc, "requirements"), self.table(doc, "options")
         requirements = {k: self.requirement(k, v) for k, v in reqs_table.items() if k != "settling_band"}
         self.check_bandwidth_order(requirements)
         options = self.options(opts_table, reqs_table)
+        models = parse_models(self, plant_table, plant, options.robust_samples)
+        models = None if models.trivial else models
         objectives = self.objectives(self.table(doc, "objectives"))
         search = self.search(self.table(doc, "search"))
         return Spec(name=name, plant=plant, controller=controller, requirements=MappingProxyType(requirements),
                     options=options, source=self.source, warnings=tuple(self.warnings),
-                    objectives=objectives, search=search)
+                    objectives=objectives, search=search, models=models)
 
     # plant ----------------------------------------------------------------
     def plant(self, t: dict) -> TransferFunction:
@@ -464,7 +482,8 @@ class _Reader:
         elif "settling_band" in reqs_table:
             band = self.settling_band(reqs_table["settling_band"], "requirements")
         order = self.integer(t.get("pade_order", Options.pade_order), "options", "pade_order", 1, 20)
-        return Options(settling_band=band, pade_order=order)
+        samples = self.integer(t.get("robust_samples", DEFAULT_SAMPLES), "options", "robust_samples", 0, MAX_SAMPLES)
+        return Options(settling_band=band, pade_order=order, robust_samples=samples)
 
     def objectives(self, t: dict) -> tuple[str, ...]:
         names = t.get("minimize", list(DEFAULT_OBJECTIVES))

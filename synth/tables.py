@@ -99,6 +99,7 @@ def records(run: Run, rows, details: bool = False) -> list[dict]:
             cols[m] = ["" if v is None else str(v) for v in rows[m].tolist()]
         else:
             cols[m] = _column(rows[m].to_numpy(float))
+    cols["robust_stable"] = _robust_column(rows).tolist()    # worst case over a model set
     reqs = {}
     for k, lim in run.spec.requirements.items():
         reqs[k] = (_column(requirement_value(REQUIREMENTS[k], rows)), _column(np.full(n, float(lim))),
@@ -128,6 +129,14 @@ def _details(run: Run, rows) -> list[dict]:
     fam = family_of(run)
     P = rows[fam.names].to_numpy(float)
     return [structure_details(fam, P[i], r) for i, r in enumerate(rows.to_dict("records"))]
+
+
+def _robust_column(rows) -> np.ndarray:
+    """``robust_stable`` of each row (stability over the whole model set; without a model set
+    the loop's own verdict: certified if re-evaluated, else the screening verdict)."""
+    if "robust_stable" in rows:
+        return rows["robust_stable"].to_numpy(bool)
+    return rows["certified"].to_numpy(bool)
 
 
 def _json_column(values) -> list[str]:
@@ -196,6 +205,7 @@ def records_json(run: Run, rows) -> list[str]:
             parts.append([json.dumps("" if v is None else str(v)) for v in rows[m].tolist()])
         else:
             parts.append(_json_column(rows[m].to_numpy(float)))
+    parts += [rep(', "robust_stable": '), _json_column(_robust_column(rows))]
     parts.append(rep(', "requirements": {'))
     for i, (k, lim) in enumerate(run.spec.requirements.items()):
         parts += [rep((", " if i else "") + f'{json.dumps(k)}: {{"value": '),
@@ -238,6 +248,9 @@ def ranked_text(run: Run, view: TableView) -> str:
     rows = list(view.records)
     lines = [f"{run.manifest.get('family', '')} on {run.spec.name}: {view.total} candidates, "
              f"{view.feasible} feasible", ""]
+    if run.spec.models is not None:   # values are worst cases; stability certified over the box
+        lines[-1:] = [f"worst case over {run.spec.models.describe()}; stability certified, performance "
+                      "sampled", ""]
     if not rows:
         return "\n".join(lines + ["(no candidates)"])
     objs = list(run.spec.objectives)
@@ -248,6 +261,8 @@ def ranked_text(run: Run, view: TableView) -> str:
     for r in rows:
         mark = "*" if r.get("knee", False) else (" " if r["feasible"] else "x")
         cert = "" if (r["certified"] or not r["feasible"]) else " (uncertified)"
+        if run.spec.models is not None and not bool(r.get("robust_stable", True)):
+            cert += " (not robustly stable)"
         c = r["controller"]
         z, p = _roots_text(c["zeros"]), _roots_text(c["poles"])
         idtext = str(int(r["id"])) + ("~" if _inactive(r) else "")

@@ -94,7 +94,10 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     poles = stability.closed_loop_poles(char)
     stable, damping, decay = stability.pole_summary(poles)
     posed = stability.well_posed(rp.num, rp.den, cnum, cden)
-    hidden, hidden_txt = stability.hidden_mode_mask(plant.num, plant.den, cnum, cden)
+    if np.ndim(plant.num) == 1:
+        hidden, hidden_txt = stability.hidden_mode_mask(plant.num, plant.den, cnum, cden)
+    else:   # one plant per row (synth.evaluate.robust.StackedPlant): cancellations show in the char. roots
+        hidden, hidden_txt = np.zeros(n, bool), [""] * n
     stable &= posed & ~hidden
 
     cols: dict[str, np.ndarray] = {m: np.full(n, np.nan) for m in METRICS + list(EXTRA_FREQUENCIES)}
@@ -125,7 +128,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
                 work &= cols[metric] >= requirements[key]
     if work.any() and not plant.delay:
         w0 = _pole_scale(char[work])
-        fm = frequency.rational_metrics(plant.num, plant.den, cnum[work], cden[work], w0)
+        fm = frequency.rational_metrics(_rows(plant.num, work), _rows(plant.den, work), cnum[work], cden[work], w0)
         for k, v in fm.items():
             cols.setdefault(k, np.full(n, np.nan))
             cols[k][work] = v
@@ -137,7 +140,8 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
                     work &= slack(req, requirement_value(req, cols), float(limit)) >= 0
     if work.any():
         idx = np.flatnonzero(work)
-        tm = _time_block(rp, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
+        rpi = rp if np.ndim(rp.num) == 1 else type(rp)(rp.num[idx], rp.den[idx])
+        tm = _time_block(rpi, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
         for k, v in tm.items():
             cols[k][idx] = v
 
@@ -207,6 +211,11 @@ def evaluate(plant: TransferFunction, family: Family, params: np.ndarray,
 
 
 # ------------------------------------------------------------------ helpers
+def _rows(p: np.ndarray, sel) -> np.ndarray:
+    """A plant polynomial for the selected rows: itself, or its rows when there is one plant per row."""
+    return p if np.ndim(p) == 1 else p[sel]
+
+
 def _pole_scale(char: np.ndarray) -> np.ndarray:
     """Geometric mean of the pole magnitudes, |char(0)/lead|^(1/n), per row."""
     n = char.shape[1] - 1

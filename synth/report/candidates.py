@@ -135,7 +135,7 @@ def load_candidates(run: Run, df: pd.DataFrame, ids: Sequence[int] | None) -> li
         row = find_row(run, df, cid)
         c = controller_of(run, row)
         rec = check_controller(spec.plant, c, dict(spec.requirements), spec.options.settling_band,
-                               spec.options.pade_order)
+                               spec.options.pade_order, models=spec.models)
         steps = None
         if rec["internally_stable"]:
             try:

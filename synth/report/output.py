@@ -38,7 +38,7 @@ def _check_png_dir(d: Path) -> None:
 
 
 def png_names() -> list[str]:
-    return [f"{i}-{k}.png" for i, k in enumerate(FIGURE_KEYS, start=1)]
+    return [f"{i}-{k}.png" for i, k in enumerate(FIGURE_KEYS + ("model-set",), start=1)]   # 8th: model sets only
 
 
 def write_outputs(html_text: str, html_path: Path, images: list[bytes], png_dir: Path | None) -> list[Path]:

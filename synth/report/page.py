@@ -47,6 +47,8 @@ def report_data(run: Run, ids: Sequence[int] | None = None) -> ReportData:
             complex_plane_data(cands, spec.plant, reqs, fr),
             pole_map_data(cands, spec.plant, reqs),
             tradeoff_data(df, list(spec.objectives), cands)]
+    from .model_figures import model_set_figures      # model sets: envelopes and pole map of all models
+    figs += model_set_figures(cands, spec.models, reqs, spec.options.pade_order, fr)
     return ReportData(run, df, cands, figs)
 
 

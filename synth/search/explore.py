@@ -28,7 +28,7 @@ from ..rank import violation
 from ..requirements import REQUIREMENTS, requirement_value
 from .refine import compass_polish
 from .seeds import seeds as classical_seeds
-from .space import Space, build_space
+from .space import Space, build_space, build_space_models
 
 SOBOL_BATCH = 2048
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
@@ -64,14 +64,16 @@ class Search:
     def __init__(self, plant: TransferFunction, controller, requirements: dict, objectives: tuple[str, ...],
                  settings: Settings, eval_options: EvalOptions,
                  on_batch: Callable[[pd.DataFrame, dict], None] | None = None,
-                 on_progress: Callable[[Progress], None] | None = None, executor=None):
+                 on_progress: Callable[[Progress], None] | None = None, executor=None, models=None):
         self.plant = plant
         self.executor = executor          # a concurrent.futures.Executor (synth.executor), or None: in-process
         self.chunk_rows = CHUNK_ROWS
+        self.models = models if models is not None and not models.trivial else None   # synth.models.ModelSet
         self.requirements = dict(requirements)
         self.objectives = tuple(objectives)
         self.settings = settings
-        self.space: Space = build_space(plant, controller, self.requirements)
+        self.space: Space = (build_space(plant, controller, self.requirements) if self.models is None
+                             else build_space_models(self.models, controller, self.requirements))
         self.options = EvalOptions(settling_band=eval_options.settling_band,
                                    pade_order=eval_options.pade_order, screen=True)
         self.on_batch = on_batch
@@ -126,14 +128,17 @@ class Search:
 
     def evaluate_params(self, params: np.ndarray) -> pd.DataFrame:
         """The one place the search hands a parameter batch to the evaluator (the seam for
-        model sets and for where the work runs). With an executor the batch is split into
+        model sets and for where the work runs). With a model set the nominal model screens
+        first and every model judges the survivors. With an executor the batch is split into
         chunks (CHUNK_SPLIT, CHUNK_ROWS) submitted as pure tasks and merged in submission order,
         so the rows do not depend on how many workers there are or which one ran what."""
         task = (self.plant, self.space.family)
+        extra = (self.models, self.objectives)
         if self.executor is None:
-            return evaluate_batch(*task, params, self.requirements, self.options)
+            return evaluate_batch(*task, params, self.requirements, self.options, *extra)
         rows = max(self.chunk_rows, -(-len(params) // CHUNK_SPLIT))
-        futures = [self.executor.submit(evaluate_batch, *task, params[i:i + rows], self.requirements, self.options)
+        futures = [self.executor.submit(evaluate_batch, *task, params[i:i + rows], self.requirements, self.options,
+                                        *extra)
                    for i in range(0, len(params), rows)]
         return pd.concat([f.result() for f in futures], ignore_index=True)
 
@@ -283,12 +288,19 @@ class Search:
         return pd.concat([feas, rest])
 
 
-def evaluate_batch(plant, family, params, requirements, options) -> pd.DataFrame:
-    """One evaluator task: (plant, family, parameter batch, requirements, options) -> metrics
-    frame. Pure (no storage, no search state), so it may run in any process, twice."""
+def evaluate_batch(plant, family, params, requirements, options, models=None, objectives=()) -> pd.DataFrame:
+    """One evaluator task: (plant, family, parameter batch, requirements, options[, model set,
+    objectives]) -> metrics frame; with a model set the worst case over its models
+    (synth.evaluate.robust.evaluate_models). Pure (no storage, no search state), so it may run
+    in any process, twice."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        return evaluate(plant, family, params, requirements, options)
+        if models is not None:
+            from ..evaluate.robust import evaluate_models
+            return evaluate_models(models, family, params, requirements, options, tuple(objectives))
+        df = evaluate(plant, family, params, requirements, options)
+        df["robust_stable"] = df["internally_stable"]
+        return df
 
 
 def requirement_conflicts(df: pd.DataFrame, requirements: dict) -> list[dict]:

@@ -271,3 +271,38 @@ def _low_gain_bound(plant: TransferFunction, fam: Family, req: dict) -> tuple[fl
     if not bounds:
         return None, ""
     return float(max(bounds)), "; ".join(why)
+
+
+def build_space_models(models, controller, requirements: dict) -> Space:
+    """:func:`build_space` for a model set: the necessary conditions must hold for every model.
+
+    ``models`` is a :class:`synth.models.ModelSet`. The space is the nominal's with
+    the low-frequency gain bound raised to the largest bound over the variants and
+    the box's vertices (the smallest |DC gain| of a box is at a vertex), the
+    infeasibilities of all of them, and a note when the gain sign of some model
+    differs from the nominal's (Stodola's condition then cannot hold for all with
+    one fixed-sign compensator of the usual structure).
+    """
+    from dataclasses import replace
+    base = build_space(models.nominal, controller, requirements)
+    others = [m for m in models.members[1:] if m.kind in ("variant", "vertex")]
+    low = base.low_gain_min
+    notes, infeasible = list(base.notes), list(base.infeasible)
+    flipped = []
+    for m in others:
+        if gain_sign(m.plant)[0] != base.family.sign:
+            flipped.append(m.name)
+        b, why = _low_gain_bound(m.plant, base.family, requirements)
+        if b == np.inf:
+            if why not in infeasible:
+                infeasible.append(f"{m.name}: {why}")
+        elif b is not None and (low is None or b > low):
+            low = b
+    if low is not None and low != base.low_gain_min:
+        notes.append(f"low-frequency gain bound raised to 10^{low:.3g} so that it holds for every model "
+                     "(final-value theorem on the model with the smallest |DC gain|)")
+    if flipped:
+        notes.append(f"the plant's DC-gain sign differs from the nominal on {len(flipped)} model(s) "
+                     f"({', '.join(flipped[:4])}{', ...' if len(flipped) > 4 else ''}): one fixed-sign gain may not "
+                     "stabilise them all (Stodola's condition)")
+    return replace(base, low_gain_min=low, notes=tuple(notes), infeasible=tuple(infeasible))

@@ -805,7 +805,8 @@ def pole_map_data(cands: list[Candidate], plant: TransferFunction, requirements:
            "zero on an unstable plant pole leaves that pole in the closed loop, ringed as a hidden mode. "
            "Shaded: where the requirements allow closed-loop poles.")
     if plant.delay:
-        cap += f" The plant's dead time {plant.delay:g} s is not shown (rational part only)."
+        cap += (f" With the plant's dead time {plant.delay:g} s the points are the rightmost roots of the "
+                "quasi-polynomial (Newton on it, counted by the argument principle), not poles of an approximant.")
     return FigureData("closed-loop-poles", "6. Closed-loop pole map", cap, panels, grid=(1, len(panels)),
                       size=(11.0, 7.6), figure_legend=True)
 
@@ -1260,8 +1261,9 @@ def _candidate_section(c: Candidate) -> str:
             f"<h3>Verdict</h3><p>{_e(verdict)}; {_e(metline)}.</p>"
             f"<h3>Requirements</h3>{requirement_table_html(c)}"
             f'<h3>Certificate</h3><pre class="certificate">{_e(rec["certificate"]["text"])}</pre>'
-            f"<h3>Closed-loop poles ({len(poles)}"
-            + (f", Padé order {rec['pade_order']} for the dead time" if rec["pade_order"] else "") + ")</h3>"
+            + (f"<h3>Loop roots ({len(poles)} roots of the quasi-polynomial with dead time, "
+               f"argument-principle count {rec.get('loop_roots_counted', -1)})</h3>" if rec["pade_order"]
+               else f"<h3>Closed-loop poles ({len(poles)})</h3>")
             "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"
             f'<p class="caution">{_e(CAUTION)}</p></section>')
 

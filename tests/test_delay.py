@@ -238,3 +238,27 @@ def test_evaluator_margins_from_crossings():
     a, b = delay.split(plant.num, plant.den, nc, dc)
     val = np.polyval(a[0], r) + np.polyval(b[0], r) * np.exp(-1.5 * r)
     assert np.all(np.abs(val) < 1e-9 * (1 + np.abs(np.polyval(np.abs(a[0]), np.abs(r)))))
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(0, 2 ** 32 - 1))
+def test_shifted_crossing_count_matches_argument_principle(seed):
+    # two independent counts of the roots with Re s > -sigma: the crossing count of the shifted
+    # quasi-polynomial and the winding number of Delta on a rectangle (argument principle)
+    a, b, theta = random_loop(seed)
+    A, B = _ab(a, b)
+    sigma = np.array([float(np.random.default_rng(seed).uniform(0.1, 2.0))])
+    n1 = delay.count_right_of(A, B, theta, sigma)
+    n2, ok = delay.argument_count(A, B, theta, sigma, delay.root_bound(A, B, theta, sigma))
+    assume(n1[0] >= 0 and ok[0])
+    assert n1[0] == n2[0]
+
+
+def test_shift_rows_against_numpy():
+    # p(z - sigma) by composition with numpy.polynomial (independent)
+    p = np.array([[2.0, -3.0, 0.5, 7.0], [1.0, 0.0, 0.0, -1.0]])
+    sig = np.array([0.7, -2.5])
+    got = delay.shift_rows(p, sig)
+    for i in range(2):
+        ref = np.polynomial.Polynomial(p[i][::-1])(np.polynomial.Polynomial([-sig[i], 1.0]))
+        assert np.allclose(got[i], ref.coef[::-1], rtol=1e-13, atol=1e-12)

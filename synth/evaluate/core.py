@@ -105,8 +105,13 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
         stable, _, crossings, dmargin = delay.rhp_count(a, b, plant.delay)
         stable &= posed & ~hidden
         counted = np.full(n, -1)
-        lr = delay.loop_roots(a, b, plant.delay, poles, count=False)
-        damping, decay_loop, loop_roots = lr.damping, lr.decay, lr.roots
+        # the search (screen) needs the roots of the stable rows only
+        rows = np.flatnonzero(stable) if options.screen else np.arange(n)
+        lr = delay.loop_roots(a[rows], b[rows], plant.delay, poles[rows], count=False)
+        damping, decay_loop = np.full(n, np.nan), np.full(n, np.nan)
+        damping[rows], decay_loop[rows] = lr.damping, lr.decay
+        loop_roots = np.full((n, lr.roots.shape[1]), np.nan + 0j)
+        loop_roots[rows] = lr.roots
     else:
         stable &= posed & ~hidden
         decay_loop = decay

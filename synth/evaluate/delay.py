@@ -42,7 +42,7 @@ from ..lti import batch_add, batch_conv, batch_polyval, batch_roots
 from .frequency import deriv, mag2, positive_real_roots, scale
 
 DOMINANCE = 3.0        # loop roots: the region Re s >= -DOMINANCE * decay rate (dominant-root rule of thumb, common practice)
-NEWTON_STEPS = 14
+NEWTON_STEPS = 10
 _TWO_PI = 2.0 * np.pi
 
 
@@ -157,12 +157,22 @@ def rhp_count(a: np.ndarray, b: np.ndarray, theta: float, delay_free_roots: np.n
 
 
 # ------------------------------------------------------------------ roots
+def _horner2(p: np.ndarray, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """p(s) and p'(s) in one Horner pass, rows of p at s (N, K)."""
+    v = np.zeros(s.shape, dtype=complex)
+    d = np.zeros(s.shape, dtype=complex)
+    for j in range(p.shape[1]):
+        d = d * s + v
+        v = v * s + p[:, j:j + 1]
+    return v, d
+
+
 def quasi_value(a, b, theta, s):
     """Delta(s) and Delta'(s) for rows of a, b at s (N, K)."""
     e = np.exp(-theta * s)
-    bs = batch_polyval(b, s)
-    return (batch_polyval(a, s) + bs * e,
-            batch_polyval(deriv(a), s) + (batch_polyval(deriv(b), s) - theta * bs) * e)
+    av, ad = _horner2(a, s)
+    bv, bd = _horner2(b, s)
+    return av + bv * e, ad + (bd - theta * bv) * e
 
 
 def newton_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray,
@@ -289,22 +299,60 @@ def argument_count(a: np.ndarray, b: np.ndarray, theta: float, sigma: np.ndarray
     return count, resolved
 
 
+def shift_rows(p: np.ndarray, sigma: np.ndarray) -> np.ndarray:
+    """Coefficients of p(z - sigma) row by row (repeated synthetic division, Horner's
+    Taylor shift), batched over rows with one sigma each."""
+    q = np.array(p, dtype=float, copy=True)
+    m = q.shape[1]
+    sg = -np.asarray(sigma, float)[:, None]
+    for i in range(m - 1):
+        for j in range(1, m - i):
+            q[:, j] = q[:, j] + sg[:, 0] * q[:, j - 1]
+    return q
+
+
+def count_right_of(a: np.ndarray, b: np.ndarray, theta: float, sigma: np.ndarray) -> np.ndarray:
+    """Number of roots of Delta with Re s > -sigma, -1 where undecided.
+
+    With s = z - sigma, Delta = A(z - sigma) + e^{theta sigma} B(z - sigma) e^{-theta z} is a
+    quasi-polynomial of the same kind, so the crossing count above (polynomial roots only,
+    no contour sampling) gives its roots in Re z > 0. Undecided: a root on the line
+    Re s = -sigma, a degenerate crossing, or a neutral chain not left of the line.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        at = shift_rows(a, sigma)
+        bt = shift_rows(b, sigma) * np.exp(theta * sigma)[:, None]
+        ok = np.all(np.isfinite(at), axis=1) & np.all(np.isfinite(bt), axis=1)
+        at, bt = np.where(ok[:, None], at, 1.0), np.where(ok[:, None], bt, 0.0)
+        adm, _ = loop_type(at, bt)
+        r = batch_roots(at + bt)
+        re = np.nan_to_num(r.real, nan=-np.inf)
+        mag = np.nan_to_num(np.abs(r), nan=0.0)
+        axis = np.abs(re) <= 1e-9 * np.maximum(mag, 1e-300)
+        c = crossings(at, bt)
+        z = np.sum(re > 0, axis=1) + 2 * crossings_below(c, theta)
+    bad = ~ok | ~adm | np.any(axis, axis=1) | on_axis(c, theta, 1e-7) | np.any(c.direction == 0, axis=1)
+    return np.where(bad, -1, z).astype(int)
+
+
 @dataclass(frozen=True)
 class LoopRoots:
     roots: np.ndarray        # (N, K) rightmost roots found, rightmost first, NaN padded
     decay: np.ndarray        # -max Re over all roots found
     damping: np.ndarray      # min zeta over the roots with Re s >= -sigma
     sigma: np.ndarray        # region of interest Re s >= -sigma
-    counted: np.ndarray      # argument-principle count in the region (-1: not counted)
+    counted: np.ndarray      # roots counted in the region (-1: not counted)
     found: np.ndarray        # roots found in the region
     complete: np.ndarray     # counted == found (no root missed)
 
 
 def loop_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray, count: bool = True) -> LoopRoots:
     """Rightmost roots of Delta: Newton from ``starts`` (e.g. the roots of the Padé
-    characteristic polynomial), then -- with ``count`` -- an argument-principle count of
-    the roots with Re s > -sigma, sigma = DOMINANCE * decay rate, and Newton from the
-    root-chain asymptotes when the first pass found fewer roots than counted."""
+    characteristic polynomial), then -- with ``count`` -- the exact number of roots with
+    Re s > -sigma, sigma = DOMINANCE * decay rate (:func:`count_right_of`, the crossing
+    count of the shifted quasi-polynomial), and Newton from the root-chain asymptotes
+    when the first pass found fewer roots than counted. :func:`argument_count` (the
+    argument principle on a contour) is the independent cross-check used in the tests."""
     roots = newton_roots(a, b, theta, starts)
     n = a.shape[0]
     counted = np.full(n, -1)
@@ -325,7 +373,8 @@ def loop_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray, c
             cap = np.where(neutral, 0.9 * np.log(np.abs(la) / np.maximum(np.abs(lb), 1e-300)) / theta, np.inf)
         sigma = np.minimum(sigma, cap)
         bound = root_bound(a, b, theta, sigma)
-        counted, resolved = argument_count(a, b, theta, sigma, bound)
+        counted = count_right_of(a, b, theta, sigma)
+        resolved = counted >= 0
         inside = (np.where(np.isnan(roots), -np.inf, roots.real) > -sigma[:, None])
         missing = resolved & (counted > inside.sum(axis=1))
         if missing.any():
@@ -594,3 +643,23 @@ def certificate(np_, dp, nc, dc, theta: float, digits: int = 40) -> dict:
                  + ("" if z else f" (delay margin {float(margin):.6g} s; critical delays computed to {digits} digits)"))
     res["text"] = "; ".join(parts)
     return res
+
+
+def screen(np_, dp, nc: np.ndarray, dc: np.ndarray, theta: float, pade_num: np.ndarray,
+           pade_den: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Screening of a batch: (stable, min damping, decay rate) of the quasi-polynomial
+    (damping and decay NaN for the unstable rows, which the search discards anyway).
+
+    The verdict is the crossing count; damping and decay come from Newton on Delta started
+    at the roots of the Padé characteristic polynomial Dp Dc pd + Np Nc pn (no counting
+    pass: the full evaluation adds it for the rows that survive the screen).
+    """
+    a, b = split(np_, dp, nc, dc)
+    stable, _, _, _ = rhp_count(a, b, theta)
+    damping, decay = np.full(a.shape[0], np.nan), np.full(a.shape[0], np.nan)
+    if stable.any():
+        a1, b1 = a[stable], b[stable]
+        char = batch_add(batch_conv(a1, pade_den), batch_conv(b1, pade_num))
+        lr = loop_roots(a1, b1, theta, batch_roots(char), count=False)
+        damping[stable], decay[stable] = lr.damping, lr.decay
+    return stable, damping, decay

@@ -218,7 +218,7 @@ def _gain_interval(lpts: np.ndarray, wpts: np.ndarray) -> dict[str, np.ndarray]:
 
 # -------------------------------------------------------------- dead time
 def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.ndarray,
-                  crossings=None, points: int = 2400) -> dict[str, np.ndarray]:
+                  crossings=None, points: int = 1200) -> dict[str, np.ndarray]:
     """The same metrics for L = Np Nc exp(-delay s)/(Dp Dc), batched over candidates.
 
     Gain crossovers are the positive roots of |Dp Dc|^2 - |Np Nc|^2 in w^2 (polynomial
@@ -243,9 +243,6 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         jw = 1j * w
         return batch_polyval(nl[rows], jw) * np.exp(-delay * jw) / batch_polyval(dl[rows], jw)
 
-    def on_grid(fun):
-        return fun(np.repeat(every, points), grid.ravel()).reshape(n, points)
-
     if crossings is None:
         from .delay import crossings as _crossings, split
         crossings = _crossings(*split(np_, dp, nc, dc))
@@ -256,10 +253,26 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         lg = _pairs_eval(loop, wg)
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
-        # phase crossovers (L real negative) and the ends of the frequency axis
+        # the exact response on the grid, once: every grid function below is built from these
+        jw = 1j * grid
+        ngr = batch_polyval(nl, jw) * np.exp(-delay * jw)
+        dgr = batch_polyval(dl, jw)
+        cgr = dgr + ngr
+        lgr = ngr / dgr
+
+        # phase crossovers (L real negative): only the few grid intervals per candidate with
+        # |L| nearest 1 decide the gain margins (k = -1/L nearest 1 from above and below)
+        ch = (np.sign(lgr.imag[:, :-1]) * np.sign(lgr.imag[:, 1:]) < 0) & \
+            ((lgr.real[:, :-1] < 0) | (lgr.real[:, 1:] < 0))
+        closeness = np.where(ch, -np.abs(np.log(np.abs(lgr[:, :-1]))), -np.inf)
+        m = min(PHASE_CANDIDATES, closeness.shape[1])
+        top = np.argpartition(-closeness, m - 1, axis=1)[:, :m]
+        sel = np.zeros_like(ch)
+        np.put_along_axis(sel, top, True, axis=1)
+
         def imag(rows, w):
             return loop(rows, w).imag
-        wp = _bisect_crossings(imag, grid, on_grid(imag))
+        wp = _bisect_crossings(imag, grid, lgr.imag, select=sel & ch)
         lp = _pairs_eval(loop, wp)
         lp = np.where(lp.real < 0, lp.real + 0j, np.nan)
         l0 = nl[:, -1] / dl[:, -1]
@@ -272,10 +285,12 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan), wpts))
 
         # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
-        for key, num in (("sensitivity_peak", None), ("complementary_peak", "T"),
-                         ("disturbance_gain_peak", npdc), ("control_gain_peak", ncdp)):
+        for key, num, top_grid in (("sensitivity_peak", None, dgr), ("complementary_peak", "T", ngr),
+                                   ("disturbance_gain_peak", npdc, None), ("control_gain_peak", ncdp, None)):
             f = _closed_loop_mag(nl, dl, delay, num)
-            pk, wpk = _grid_peak(f, grid)
+            if top_grid is None:
+                top_grid = batch_polyval(num, jw)
+            pk, wpk = _grid_peak(f, grid, np.abs(top_grid / cgr))
             at0 = f(every, np.zeros(n))
             at0 = np.where(np.isfinite(at0), at0, -np.inf)
             out[key] = np.maximum(pk, at0)
@@ -289,7 +304,7 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
 
         def tdrop(rows, w):
             return ft(rows, w) - level[rows]
-        wb = _bisect_crossings(tdrop, grid, on_grid(tdrop), first_only=True)
+        wb = _bisect_crossings(tdrop, grid, np.abs(ngr / cgr) - level[:, None], first_only=True)
         out["bandwidth_rad_s"] = np.where(t0 > 0, wb[:, 0], np.nan)
     return out
 
@@ -321,13 +336,16 @@ def _closed_loop_mag(nl, dl, delay, which):
 
 
 PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
+PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
 
 
-def _grid_peak(f, grid, iters: int = 50):
+def _grid_peak(f, grid, v=None, iters: int = 50):
     """Max of f(rows, w) over the grid: the largest few local maxima each refined by
-    golden-section search in log-frequency (several near-equal maxima occur with dead time)."""
+    golden-section search in log-frequency (several near-equal maxima occur with dead time).
+    ``v`` are the grid values when already known."""
     n, K = grid.shape
-    v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
+    if v is None:
+        v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
     v = np.where(np.isfinite(v), v, -np.inf)
     locmax = np.zeros_like(v, dtype=bool)
     locmax[:, 1:-1] = (v[:, 1:-1] >= v[:, :-2]) & (v[:, 1:-1] >= v[:, 2:])
@@ -360,16 +378,18 @@ def _grid_peak(f, grid, iters: int = 50):
     return cand_v[r, j], cand_w[r, j]
 
 
-def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False):
+def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False, select=None):
     """Sign changes of ``vals`` along each grid row, refined by bisection on fun(rows, w).
 
-    All (candidate, interval) pairs are refined together. Returns an (N, M) NaN-padded
-    array of crossing frequencies.
+    All (candidate, interval) pairs are refined together (only those in ``select`` when
+    given). Returns an (N, M) NaN-padded array of crossing frequencies.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
     if first_only:
         ch &= np.cumsum(ch, axis=1) == 1
+    if select is not None:
+        ch &= select
     counts = ch.sum(axis=1)
     m = max(int(counts.max()) if counts.size else 0, 1)
     out = np.full((grid.shape[0], m), np.nan)

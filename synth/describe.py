@@ -175,7 +175,7 @@ def format_record(rec: dict, title: str = "") -> str:
         counted = rec.get("loop_roots_counted", -1)
         out.append(f"loop roots: the {len(poles)} roots of the quasi-polynomial Dp Dc + Np Nc e^(-theta s) "
                    f"with Re s > -{delay.DOMINANCE:g} x decay rate (Newton on the quasi-polynomial; "
-                   + (f"{counted} counted there exactly by the crossing count of the shifted quasi-polynomial)"
+                   + (f"{counted} counted there by the crossing count of the shifted quasi-polynomial, floating point)"
                       if counted >= 0 else "not counted)"))
     else:
         out.append(f"closed-loop poles ({len(poles)})")

@@ -807,8 +807,8 @@ def pole_map_data(cands: list[Candidate], plant: TransferFunction, requirements:
            "Shaded: where the requirements allow closed-loop poles.")
     if plant.delay:
         cap += (f" With the plant's dead time {plant.delay:g} s the points are the rightmost roots of the "
-                f"quasi-polynomial (Newton on it; their number right of -{DOMINANCE:g} x decay rate counted exactly), not poles "
-                "of an approximant.")
+                f"quasi-polynomial (Newton on it; their number right of -{DOMINANCE:g} x decay rate counted by a "
+                "crossing count), not poles of an approximant.")
     return FigureData("closed-loop-poles", "6. Closed-loop pole map", cap, panels, grid=(1, len(panels)),
                       size=(11.0, 7.6), figure_legend=True)
 
@@ -1264,9 +1264,10 @@ def _candidate_section(c: Candidate) -> str:
             f"<h3>Requirements</h3>{requirement_table_html(c)}"
             f'<h3>Certificate</h3><pre class="certificate">{_e(rec["certificate"]["text"])}</pre>'
             + (f"<h3>Loop roots ({len(poles)} roots of the quasi-polynomial with dead time, "
-               f"{rec.get('loop_roots_counted', -1)} counted in Re s > -{DOMINANCE:g} x decay rate)</h3>" if rec["pade_order"]
+               f"{rec.get('loop_roots_counted', -1)} counted in Re s > -{DOMINANCE:g} x decay rate)</h3>"
+               if rec["pade_order"]
                else f"<h3>Closed-loop poles ({len(poles)})</h3>")
-            "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"
+            + "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"
             f'<p class="caution">{_e(CAUTION)}</p></section>')
 
 

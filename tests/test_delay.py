@@ -262,3 +262,11 @@ def test_shift_rows_against_numpy():
     for i in range(2):
         ref = np.polynomial.Polynomial(p[i][::-1])(np.polynomial.Polynomial([-sig[i], 1.0]))
         assert np.allclose(got[i], ref.coef[::-1], rtol=1e-13, atol=1e-12)
+
+
+def test_common_imaginary_axis_factor_is_not_stable():
+    # A and B share the factor s^2 + 1: Delta(+-j) = 0 for every delay (a fixed root on the axis)
+    f = np.array([1.0, 0.0, 1.0])
+    a = np.polymul(f, [1.0, 2.0])[None, :]
+    b = np.pad(np.polymul(f, [0.5]), (1, 0))[None, :]
+    assert not delay.rhp_count(a, b, 0.3)[0][0]

@@ -152,6 +152,8 @@ def rhp_count(a: np.ndarray, b: np.ndarray, theta: float, delay_free_roots: np.n
     c = crossings(a, b)
     z = z0 + 2 * crossings_below(c, theta)
     degenerate = np.any(c.direction == 0, axis=1)
+    # A(jw) = B(jw) = 0 at a crossing frequency: a common factor, a root on the axis for every delay
+    degenerate |= np.any(~np.isnan(c.w) & ~np.isfinite(c.phi), axis=1)
     stable = ok & (z == 0) & ~on_axis(c, theta) & ~degenerate & ~np.any(axis & (mag == 0), axis=1)
     return stable, np.where(ok, z, -1), c, np.where(stable, delay_margin(c, theta), np.nan)
 

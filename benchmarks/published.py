@@ -774,7 +774,7 @@ def report(results: list[dict], limits: list[dict], args, wall: float) -> str:
                 best = min(vals)
                 if q == "mt" and not lm["rhp_poles"]:
                     # no RHP pole: T can be made arbitrarily small without integral action, and
-                    # synth.limits.complementary_bound's 1.0 holds only with integral action
+                    # synth.limits.complementary_bound claims no bound (None); 1 holds only with integral action
                     with_i = min(o[q] for o in lm["orders"] if o["integrator"])
                     cells += ["none (1 with integrator)", _f(best, 4) + f" ({_f(with_i, 4)} with integrator)",
                               f"{_f(with_i, 4)} with integrator", "-"]

@@ -51,15 +51,20 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     requirement values are the worst case over the models, each naming the model that
     sets it, and ``models``, ``robust_certificate`` are added (see :func:`robust_record`).
     """
-    from .evaluate import EvalOptions, METRICS, evaluate_controllers, stability   # heavy: import on use
+    from .evaluate import EvalOptions, METRICS, evaluate_controllers, stability, delay   # heavy: import on use
     from .evaluate.core import EXTRA_FREQUENCIES
     opts = EvalOptions(settling_band=settling_band, pade_order=pade_order)
     row = evaluate_controllers(plant, controller.num[None, :], controller.den[None, :],
                                requirements, opts).iloc[0]
-    rp = plant.with_pade(pade_order) if plant.delay else plant
-    char = stability.characteristic(rp.num, rp.den, controller.num[None, :], controller.den[None, :])[0]
-    cert = stability.certificate(char, requirements.get("min_decay_rate"))
     stable = bool(row["internally_stable"])
+    if plant.delay:
+        dcert = delay.certificate(plant.num, plant.den, controller.num, controller.den, plant.delay)
+        cert = {"hurwitz": dcert["stable"] is True, "decay_rate_certified": None,
+                "poles": np.asarray(row["closed_loop_poles"], complex)}
+        cert["poles"] = cert["poles"][~np.isnan(cert["poles"])]
+    else:
+        char = stability.characteristic(plant.num, plant.den, controller.num[None, :], controller.den[None, :])[0]
+        cert = stability.certificate(char, requirements.get("min_decay_rate"))
     certified = stable and cert["hurwitz"]
     rec: dict[str, Any] = {}
     for m in METRICS:
@@ -69,6 +74,8 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     rec["certified"] = certified
     rec["closed_loop_poles"] = sorted(cert["poles"], key=lambda z: (-z.real, z.imag))
     rec["pade_order"] = int(row["pade_order"])
+    if plant.delay:
+        rec["loop_roots_counted"] = int(row["loop_roots_counted"])
     reqs = {}
     for key, limit in requirements.items():
         req = REQUIREMENTS[key]
@@ -80,11 +87,10 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     rec["feasible"] = bool(row["feasible"])
     rec["controller"] = controller_record(controller)
     rec["robust_stable"] = certified
-    text = cert["text"]
     if plant.delay:
-        text = (f"dead time {plant.delay:g} s: Nyquist criterion on the exact frequency response: "
-                f"{'stable' if stable else 'NOT stable'}; closed-loop poles and time responses from a "
-                f"Padé approximant of order {pade_order}; {text} (on the Padé characteristic polynomial)")
+        text = (f"dead time {plant.delay:g} s, Delta(s) = Dp Dc + Np Nc e^(-{plant.delay:g} s): {dcert['text']}")
+    else:
+        text = cert["text"]
     rec["certificate"] = {"text": text, "routh_hurwitz": cert["hurwitz"],
                           "decay_rate_certified": cert["decay_rate_certified"]}
     if models is not None and not models.trivial:
@@ -267,8 +273,14 @@ def format_record(rec: dict, title: str = "") -> str:
             out.append(f"  {k:<32}{fmt_num(rec[k]):>14}")
     out.append("")
     poles = rec["closed_loop_poles"]
-    out.append(f"closed-loop poles ({len(poles)}"
-               + (f", Padé order {rec['pade_order']} for the dead time" if rec["pade_order"] else "") + ")")
+    if rec["pade_order"]:
+        counted = rec.get("loop_roots_counted", -1)
+        out.append(f"loop roots: the {len(poles)} roots of the quasi-polynomial Dp Dc + Np Nc e^(-theta s) "
+                   f"with Re s > -{delay.DOMINANCE:g} x decay rate (Newton on the quasi-polynomial; "
+                   + (f"{counted} counted there by the crossing count of the shifted quasi-polynomial, floating point)"
+                      if counted >= 0 else "not counted)"))
+    else:
+        out.append(f"closed-loop poles ({len(poles)})")
     for p in poles:
         mag = abs(p)
         zeta = -p.real / mag if mag > 0 else 1.0

@@ -36,9 +36,15 @@ def sensitivity_bound(plant: TransferFunction) -> float:
     return best
 
 
-def complementary_bound(plant: TransferFunction) -> float:
-    """Largest interpolation lower bound on the peak of |T| over the plant's RHP poles (>= 1)."""
+def complementary_bound(plant: TransferFunction) -> float | None:
+    """Largest interpolation lower bound on the peak of |T| over the plant's RHP poles (>= 1).
+
+    None for a plant without RHP poles: then no bound exists (a small enough gain makes
+    |T| as small as one likes), so none is claimed.
+    """
     zs, ps = rhp_roots(plant)
+    if not len(ps):
+        return None
     best = 1.0
     for p in ps:
         b = np.prod([abs(np.conj(z) + p) / abs(z - p) for z in zs]) if len(zs) else 1.0
@@ -57,7 +63,7 @@ def plant_limits(plant: TransferFunction, requirements: dict) -> list[str]:
                    "controller (Skogestad & Postlethwaite 2005, ch. 5)"
                    + (f"; max_sensitivity_peak = {lim:g} is out of reach" if lim is not None and lim < ms else ""))
     mt = complementary_bound(plant)
-    if mt > 1.0 + 1e-9:
+    if mt is not None and mt > 1.0 + 1e-9:
         lim = requirements.get("max_complementary_peak")
         out.append(f"the RHP pole(s) bound the complementary sensitivity peak: Mt >= {mt:.4g}"
                    + (f"; max_complementary_peak = {lim:g} is out of reach" if lim is not None and lim < mt else ""))

@@ -37,6 +37,7 @@ OBJECTIVE_METRICS = (
 DEFAULT_OBJECTIVES = ("settling_time_s", "disturbance_peak", "control_peak")
 SEARCH_DEFAULTS = MappingProxyType({"budget": 20000, "time_limit_s": 30.0, "seed": 0})
 HIDDEN_MODE_REL_TOL = 1e-6
+COEFFICIENT_RANGE = (1e-80, 1e80)   # plant coefficients / largest denominator coefficient
 
 _TABLE_KEYS = {
     "plant": ("numerator", "denominator", "zeros", "poles", "gain", "transfer", "delay_s", "intervals", "variants"),
@@ -391,6 +392,7 @@ class _Reader:
         if not tf.is_proper:
             raise self.error("plant", num_key, f"the plant is improper (numerator degree {tf.num.size - 1} > "
                              f"denominator degree {tf.den.size - 1})", "at most as many zeros as poles")
+        self.coefficient_range(tf, num_key)
         for r in _shared_roots(tf.num, tf.den):
             if r.imag < -HIDDEN_MODE_REL_TOL * max(1.0, abs(r)):
                 continue  # reported with its conjugate
@@ -403,6 +405,31 @@ class _Reader:
                                  "and no controller can move this pole")
         delay = self.number(t.get("delay_s", 0.0), "plant", "delay_s", lo=0.0)
         return TransferFunction(tf.num, tf.den, tf.delay + delay)
+
+    def coefficient_range(self, tf: TransferFunction, key: str) -> None:
+        """Refuse coefficients the float64 evaluator cannot handle: after dividing by the largest
+        denominator coefficient every non-zero coefficient must lie within 1e-80..1e80, and the
+        plant's roots must come out without a floating-point overflow."""
+        scale = float(np.max(np.abs(tf.den)))
+        coef = np.abs(np.concatenate([tf.num, tf.den])) / scale
+        coef = coef[coef > 0]
+        lo, hi = float(coef.min()), float(coef.max())
+        problem = None
+        if not (np.isfinite(scale) and lo >= COEFFICIENT_RANGE[0] and hi <= COEFFICIENT_RANGE[1]):
+            problem = (f"coefficients span {lo:.3g} to {hi:.3g} relative to the largest denominator coefficient")
+        else:
+            try:
+                with np.errstate(all="raise"):
+                    for p in (tf.num, tf.den):
+                        if np.count_nonzero(p) > 1:
+                            if not np.all(np.isfinite(np.roots(p))):
+                                raise FloatingPointError
+            except (FloatingPointError, np.linalg.LinAlgError):
+                problem = "the plant's poles and zeros overflow in double precision"
+        if problem:
+            raise self.error("plant", key, problem,
+                             f"coefficients within {COEFFICIENT_RANGE[0]:g}..{COEFFICIENT_RANGE[1]:g} of each other "
+                             "(rescale the time unit or the signal units)")
 
     def roots(self, value, key: str) -> list[complex]:
         """Real roots as numbers, complex roots as [re, im] pairs that come in conjugate pairs."""

@@ -182,3 +182,19 @@ def test_every_example_spec_designs(spec, tmp_path):
     assert best["feasible"], f"{spec.name}: no feasible design at budget 2500"
     assert best["certified"] and best["internally_stable"]
     assert all(v["met"] for v in best["requirements"].values())
+
+
+@pytest.mark.parametrize("plant", ['transfer = "1e300/(1e-300*s^2 + s + 1)"',
+                                   "numerator = [1e300]\ndenominator = [1e-300, 1, 1]",
+                                   'zeros = []\npoles = [-1e300, -1e-300]\ngain = 1e300'])
+def test_extreme_plant_coefficients_are_an_input_error(tmp_path, plant):
+    # issue 8 item 6: a clear error naming the file and key, exit status 2, no numpy warning text
+    p = tmp_path / "extreme.toml"
+    p.write_text(f'name = "extreme"\n[plant]\n{plant}\n[controller]\nkind = "pi"\n'
+                 "[requirements]\nmin_phase_margin_deg = 45\n")
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")          # any RuntimeWarning would fail the run
+        r = run("check", p, "-c", "1")
+    assert r.exit_code == 2, r.output
+    assert str(p) in r.output and "[plant]" in r.output and "Warning" not in r.output

@@ -322,3 +322,12 @@ def test_interpolation_bound_of_a_rhp_zero_pole_pair():
         assert ok["sensitivity_peak"].min() >= 5 / 3 - 1e-9
         assert ok["complementary_peak"].min() >= 5 / 3 - 1e-9
     assert stable > 200
+
+
+def test_no_complementary_bound_without_rhp_poles():
+    # Skogestad & Postlethwaite 2005, ch. 5: the interpolation bound on ||T||inf comes from RHP
+    # poles only; for a stable plant a small gain makes |T| as small as one likes (T -> 0 as k -> 0)
+    for text in ("1/(s+1)", "(s-4)/((s+1)*(s+2))", "exp(-2*s)/(3*s+1)"):
+        assert complementary_bound(parse_rational(text)) is None
+    # with a RHP pole and dead time the bound grows by e^(p theta) (same source)
+    assert complementary_bound(parse_rational("exp(-0.5*s)/(s-1)")) == pytest.approx(np.exp(0.5), rel=1e-12)

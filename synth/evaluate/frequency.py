@@ -5,10 +5,11 @@ frequency grid. With p(jw) = R(x) + jw I(x), |p(jw)|^2 = R^2 + x I^2; gain
 crossovers solve |N|^2 = |D|^2, phase crossovers solve Ni*Dr - Nr*Di = 0, and the
 peak of |A/B| over w is at x = 0, x -> inf or a positive root of A'B - AB'.
 
-Loops with dead time: the frequency response is evaluated exactly (phase -w*theta)
-on a dense logarithmic grid and every extremum or crossing is refined by batched
-golden-section search or bisection on the exact response; stability comes from
-the Nyquist criterion on the exact response (Nyquist 1932).
+Loops with dead time: gain crossovers are polynomial roots as above (|e^{-jw theta}| = 1);
+the rest is evaluated on the exact frequency response (phase -w*theta) on a dense
+logarithmic grid, every extremum or crossing refined by batched golden-section search
+or bisection on the exact response (no loop per candidate). Their stability verdict
+is the crossing count of synth.evaluate.delay, not a frequency-domain test.
 
 All polynomials are first rescaled to s = w0 * s_hat, with w0 the geometric mean
 of the closed-loop pole magnitudes, which keeps the companion matrices well
@@ -217,13 +218,16 @@ def _gain_interval(lpts: np.ndarray, wpts: np.ndarray) -> dict[str, np.ndarray]:
 
 # -------------------------------------------------------------- dead time
 def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.ndarray,
-                  eps: np.ndarray | None = None, points: int = 2400) -> dict[str, np.ndarray]:
-    """The same metrics for L = Np Nc exp(-delay s)/(Dp Dc), plus the Nyquist verdict.
+                  crossings=None, points: int = 1200) -> dict[str, np.ndarray]:
+    """The same metrics for L = Np Nc exp(-delay s)/(Dp Dc), batched over candidates.
 
-    Grid: ``points`` logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate,
-    plus w = 0; the largest few local maxima of each peak function are refined by
-    golden-section search and every crossing by bisection, on the exact response.
-    ``eps`` sets the line Re s = -eps of the Nyquist count (default 1e-5 w0).
+    Gain crossovers are the positive roots of |Dp Dc|^2 - |Np Nc|^2 in w^2 (polynomial
+    roots, no grid; ``crossings`` from :func:`synth.evaluate.delay.crossings` when already
+    computed). Phase crossovers, peaks and the bandwidth come from a grid of ``points``
+    logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate plus w = 0: the largest few
+    local maxima of each peak function are refined by golden-section search and every
+    crossing by bisection, all candidates together, on the exact response.
+    The stability verdict is not made here (see :mod:`synth.evaluate.delay`).
     """
     n = nc.shape[0]
     nl = batch_conv(nc, np_)
@@ -239,24 +243,36 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         jw = 1j * w
         return batch_polyval(nl[rows], jw) * np.exp(-delay * jw) / batch_polyval(dl[rows], jw)
 
-    def on_grid(fun):
-        return fun(np.repeat(every, points), grid.ravel()).reshape(n, points)
-
+    if crossings is None:
+        from .delay import crossings as _crossings, split
+        crossings = _crossings(*split(np_, dp, nc, dc))
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         out = {}
-        out["nyquist_stable"] = _nyquist_stable(nl, dl, delay, eps if eps is not None else lo, w0)
-
-        # gain crossovers
-        def logmag(rows, w):
-            return np.log(np.abs(loop(rows, w)))
-        wg = _bisect_crossings(logmag, grid, on_grid(logmag))
+        # gain crossovers: |L(jw)| = 1 exactly where |A|^2 = |B|^2
+        wg = crossings.w
         lg = _pairs_eval(loop, wg)
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
-        # phase crossovers (L real negative) and the ends of the frequency axis
+        # the exact response on the grid, once: every grid function below is built from these
+        jw = 1j * grid
+        ngr = batch_polyval(nl, jw) * np.exp(-delay * jw)
+        dgr = batch_polyval(dl, jw)
+        cgr = dgr + ngr
+        lgr = ngr / dgr
+
+        # phase crossovers (L real negative): only the few grid intervals per candidate with
+        # |L| nearest 1 decide the gain margins (k = -1/L nearest 1 from above and below)
+        ch = (np.sign(lgr.imag[:, :-1]) * np.sign(lgr.imag[:, 1:]) < 0) & \
+            ((lgr.real[:, :-1] < 0) | (lgr.real[:, 1:] < 0))
+        closeness = np.where(ch, -np.abs(np.log(np.abs(lgr[:, :-1]))), -np.inf)
+        m = min(PHASE_CANDIDATES, closeness.shape[1])
+        top = np.argpartition(-closeness, m - 1, axis=1)[:, :m]
+        sel = np.zeros_like(ch)
+        np.put_along_axis(sel, top, True, axis=1)
+
         def imag(rows, w):
             return loop(rows, w).imag
-        wp = _bisect_crossings(imag, grid, on_grid(imag))
+        wp = _bisect_crossings(imag, grid, lgr.imag, select=sel & ch)
         lp = _pairs_eval(loop, wp)
         lp = np.where(lp.real < 0, lp.real + 0j, np.nan)
         l0 = nl[:, -1] / dl[:, -1]
@@ -267,13 +283,14 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         lpts = np.concatenate([l0[:, None] + 0j, lp, -linf_mag[:, None] + 0j], axis=1)
         wpts = np.concatenate([np.zeros((n, 1)), wp, np.full((n, 1), np.inf)], axis=1)
         out.update(_gain_interval(np.where(np.abs(lpts) > 0, lpts, np.nan), wpts))
-        out["nyquist_stable"] &= linf_mag < 1.0
 
         # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
-        for key, num in (("sensitivity_peak", None), ("complementary_peak", "T"),
-                         ("disturbance_gain_peak", npdc), ("control_gain_peak", ncdp)):
+        for key, num, top_grid in (("sensitivity_peak", None, dgr), ("complementary_peak", "T", ngr),
+                                   ("disturbance_gain_peak", npdc, None), ("control_gain_peak", ncdp, None)):
             f = _closed_loop_mag(nl, dl, delay, num)
-            pk, wpk = _grid_peak(f, grid)
+            if top_grid is None:
+                top_grid = batch_polyval(num, jw)
+            pk, wpk = _grid_peak(f, grid, np.abs(top_grid / cgr))
             at0 = f(every, np.zeros(n))
             at0 = np.where(np.isfinite(at0), at0, -np.inf)
             out[key] = np.maximum(pk, at0)
@@ -287,7 +304,7 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
 
         def tdrop(rows, w):
             return ft(rows, w) - level[rows]
-        wb = _bisect_crossings(tdrop, grid, on_grid(tdrop), first_only=True)
+        wb = _bisect_crossings(tdrop, grid, np.abs(ngr / cgr) - level[:, None], first_only=True)
         out["bandwidth_rad_s"] = np.where(t0 > 0, wb[:, 0], np.nan)
     return out
 
@@ -319,13 +336,16 @@ def _closed_loop_mag(nl, dl, delay, which):
 
 
 PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
+PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
 
 
-def _grid_peak(f, grid, iters: int = 50):
+def _grid_peak(f, grid, v=None, iters: int = 50):
     """Max of f(rows, w) over the grid: the largest few local maxima each refined by
-    golden-section search in log-frequency (several near-equal maxima occur with dead time)."""
+    golden-section search in log-frequency (several near-equal maxima occur with dead time).
+    ``v`` are the grid values when already known."""
     n, K = grid.shape
-    v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
+    if v is None:
+        v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
     v = np.where(np.isfinite(v), v, -np.inf)
     locmax = np.zeros_like(v, dtype=bool)
     locmax[:, 1:-1] = (v[:, 1:-1] >= v[:, :-2]) & (v[:, 1:-1] >= v[:, 2:])
@@ -358,16 +378,18 @@ def _grid_peak(f, grid, iters: int = 50):
     return cand_v[r, j], cand_w[r, j]
 
 
-def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False):
+def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False, select=None):
     """Sign changes of ``vals`` along each grid row, refined by bisection on fun(rows, w).
 
-    All (candidate, interval) pairs are refined together. Returns an (N, M) NaN-padded
-    array of crossing frequencies.
+    All (candidate, interval) pairs are refined together (only those in ``select`` when
+    given). Returns an (N, M) NaN-padded array of crossing frequencies.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
     if first_only:
         ch &= np.cumsum(ch, axis=1) == 1
+    if select is not None:
+        ch &= select
     counts = ch.sum(axis=1)
     m = max(int(counts.max()) if counts.size else 0, 1)
     out = np.full((grid.shape[0], m), np.nan)
@@ -387,27 +409,3 @@ def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False
         b = np.where(same, b, mid)
     out[rows, order] = np.exp(0.5 * (a + b))
     return out
-
-
-def _nyquist_stable(nl, dl, delay, eps, w0=None, per_decade: int = 400):
-    """Nyquist criterion on the line Re s = -eps: closed-loop RHP roots Z = P + N_cw.
-
-    P counts roots of the unreduced Dp*Dc right of -eps; N_cw is minus the net
-    change of arg(1 + L) along the line (twice the half-line, by symmetry) over 2 pi.
-    The frequency grid runs from 1e-3 eps to 1e4 w0 with ``per_decade`` points per decade.
-    """
-    n = nl.shape[0]
-    w0 = eps * 1e5 if w0 is None else w0
-    droots = batch_roots(dl)
-    P = np.sum(np.nan_to_num(droots.real, nan=-np.inf) > -eps[:, None], axis=1)
-    lo, hi = 1e-3 * eps, 1e4 * w0
-    decades = float(np.max(np.log10(hi / lo)))
-    u = np.linspace(0.0, 1.0, int(per_decade * decades) + 1)
-    w = np.concatenate([np.zeros((n, 1)), lo[:, None] * (hi / lo)[:, None] ** u[None, :]], axis=1)
-    s = -eps[:, None] + 1j * w
-    F = 1 + batch_polyval(nl, s) * np.exp(-delay * s) / batch_polyval(dl, s)
-    ph = np.unwrap(np.angle(F), axis=1)
-    dphi = ph[:, -1] - ph[:, 0]
-    ncw = -2 * dphi / (2 * np.pi)
-    z = P + ncw
-    return np.abs(z) < 0.5

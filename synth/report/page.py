@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from .. import CAUTION, __version__
+from ..evaluate.delay import DOMINANCE
 from ..describe import fmt_complex, fmt_num, verdict_text
 from ..lti import TransferFunction
 from ..requirements import REQUIREMENTS
@@ -156,9 +157,11 @@ def _candidate_section(c: Candidate) -> str:
             f"<h3>Verdict</h3><p>{_e(verdict)}; {_e(metline)}.</p>"
             f"<h3>Requirements</h3>{requirement_table_html(c)}"
             f'<h3>Certificate</h3><pre class="certificate">{_e(rec["certificate"]["text"])}</pre>'
-            f"<h3>Closed-loop poles ({len(poles)}"
-            + (f", Padé order {rec['pade_order']} for the dead time" if rec["pade_order"] else "") + ")</h3>"
-            "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"
+            + (f"<h3>Loop roots ({len(poles)} roots of the quasi-polynomial with dead time, "
+               f"{rec.get('loop_roots_counted', -1)} counted in Re s > -{DOMINANCE:g} x decay rate)</h3>"
+               if rec["pade_order"]
+               else f"<h3>Closed-loop poles ({len(poles)})</h3>")
+            + "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"
             f'<p class="caution">{_e(CAUTION)}</p></section>')
 
 

@@ -108,6 +108,9 @@ def pole_map_data(cands: list[Candidate], plant: TransferFunction, requirements:
            "zero on an unstable plant pole leaves that pole in the closed loop, ringed as a hidden mode. "
            "Shaded: where the requirements allow closed-loop poles.")
     if plant.delay:
-        cap += f" The plant's dead time {plant.delay:g} s is not shown (rational part only)."
+        from ..evaluate.delay import DOMINANCE
+        cap += (f" With the plant's dead time {plant.delay:g} s the points are the rightmost roots of the "
+                f"quasi-polynomial (Newton on it; their number right of -{DOMINANCE:g} x decay rate counted by a "
+                "crossing count), not poles of an approximant.")
     return FigureData("closed-loop-poles", "6. Closed-loop pole map", cap, panels, grid=(1, len(panels)),
                       size=(11.0, 7.6), figure_legend=True)

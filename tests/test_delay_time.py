@@ -15,9 +15,7 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, signal
 
-from synth.evaluate import EvalOptions, evaluate_controllers, step_responses
 from synth.evaluate.delay_time import delay_integral, delay_step_responses, delay_time_metrics
-from synth.lti import TransferFunction
 
 
 # ------------------------------------------------------------------ independent oracle
@@ -246,19 +244,6 @@ def test_metrics_against_oracle(name):
     assert m["rise_time_s"][0] == pytest.approx(tr, rel=1e-7)
     if np.polyval(cd, 0) == 0:     # integral action: the load is rejected, IAE finite
         assert m["disturbance_iae"][0] == pytest.approx(oracle_iae(load, horizon), rel=1e-6)
-
-
-def test_evaluator_reports_delay_figures_not_pade():
-    # synth.evaluate on e^-s/(1+0.1s) with the SIMC PI: the delay-equation figures (REFERENCES.md),
-    # not the Padé model's (IAE 2.2419, peak 1.00474, issue 8), whatever pade_order says
-    G = TransferFunction([1.0], [0.1, 1.0], 1.0)
-    for order in (2, 6):
-        rw = evaluate_controllers(G, [[0.005, 0.05]], [[0.1, 0.0]], {}, EvalOptions(pade_order=order)).iloc[0]
-        assert rw["disturbance_iae"] == pytest.approx(2.16755, abs=6e-6)
-        assert rw["disturbance_peak"] == pytest.approx(0.99995, abs=6e-6)
-    r = step_responses(G, [[0.005, 0.05]], [[0.1, 0.0]])
-    assert np.abs(r.y[0, :, 1]).max() == pytest.approx(0.99995, abs=1e-3)
-    assert r.t[0, 0] == 0.0 and np.all(np.diff(r.t[0]) > 0)
 
 
 def test_batch_of_mixed_controllers_equals_one_at_a_time():

@@ -180,17 +180,16 @@ def test_first_order_dead_time_table(T, rule, kc, ti, ms, pm, gm, iae, peak):
     assert r["disturbance_peak"] == pytest.approx(oracle_peak, rel=tol)
 
 
-def test_dead_time_iae_converges_from_above_with_the_pade_order():
-    # a known property of the evaluator (DESIGN.md: "closed-loop poles and time responses from a
-    # Pade approximant whose order is reported"): for the delay-dominant e^-s/(1+0.1s) under SIMC
-    # the load-step IAE at the default order 6 is 3.5 % above the exact-delay value and falls
-    # monotonically towards it with the order
+def test_dead_time_iae_is_the_delay_loops_whatever_the_pade_order():
+    # the load-step IAE of the delay-dominant e^-s/(1+0.1s) under SIMC PI (Skogestad 2003) equals
+    # this file's own method-of-steps solution of the delay equation at every Padé order: the
+    # approximant only starts the loop-root search, it never produces a reported figure (a Padé(6)
+    # model gave +3.5 % here; shared/REFERENCES.md)
     plant = parse_rational("exp(-s)/(1+0.1*s)")
     g = Y.simc_pi(1.0, 0.1, 1.0)
     exact, _, _ = _delay_load_response(0.1, g.kp, g.ki)
-    iae = [loop_row(plant, g, pade_order=n)["disturbance_iae"] for n in (6, 10, 14, 20)]
-    assert all(a > b > exact for a, b in zip(iae, iae[1:]))
-    assert iae[0] / exact == pytest.approx(1.035, abs=0.005)
+    for n in (2, 6, 20):
+        assert loop_row(plant, g, pade_order=n)["disturbance_iae"] == pytest.approx(exact, rel=1e-5)
 
 
 # ------------------------------------------------------------------ IE = 1/ki
@@ -205,7 +204,11 @@ def test_integrated_error_of_a_pi_loop_is_one_over_ki(plant, g):
     # cancel the unit load: ki * integral(y) = 1). Signed integral of synth's own sampled response.
     num, den = Y.pid_polynomials(g)
     resp = step_responses(plant, num[None], den[None], pade_order=12)
-    ie = synth_time.exact_integral(resp, 1)[0]
+    if plant.delay:     # responses of the delay equation itself (synth.evaluate.delay_time)
+        from synth.evaluate.delay_time import delay_integral
+        ie = delay_integral(resp, 1)[0]
+    else:
+        ie = synth_time.exact_integral(resp, 1)[0]
     assert ie == pytest.approx(1.0 / g.ki, rel=1e-4)
     iae = loop_row(plant, g, pade_order=12)["disturbance_iae"]
     assert iae >= ie * (1 - 1e-6)          # IAE = IE only without a sign change of y

@@ -19,7 +19,7 @@ from threadpoolctl import threadpool_limits
 from ..lti import TransferFunction, batch_conv
 from ..requirements import REQUIREMENTS, requirement_value, slack
 from ..structures import Family
-from . import delay, frequency, stability, time
+from . import delay, delay_time, frequency, stability, time
 
 
 METRICS = [
@@ -167,8 +167,15 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
                     work &= slack(req, requirement_value(req, cols), float(limit)) >= 0
     if work.any():
         idx = np.flatnonzero(work)
-        rpi = rp if np.ndim(rp.num) == 1 else type(rp)(rp.num[idx], rp.den[idx])
-        tm = _time_block(rpi, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
+        if plant.delay:   # the delay equation itself; the decay rate only sets the horizon
+            d = decay[idx]
+            dl_ = decay_loop[idx]
+            horizon_decay = np.where(np.isfinite(dl_) & (dl_ > 0), np.fmin(dl_, d), d)
+            tm = delay_time.delay_time_metrics(plant.num, plant.den, cnum[idx], cden[idx], plant.delay,
+                                               horizon_decay, options.settling_band)
+        else:
+            rpi = rp if np.ndim(rp.num) == 1 else type(rp)(rp.num[idx], rp.den[idx])
+            tm = _time_block(rpi, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
         for k, v in tm.items():
             cols[k][idx] = v
 
@@ -273,10 +280,11 @@ def _pole_lists(poles: np.ndarray) -> np.ndarray:
 
 
 def step_responses(plant: TransferFunction, cnum: np.ndarray, cden: np.ndarray,
-                   pade_order: int = 6) -> "time.Responses":
+                   pade_order: int = 6) -> "time.Responses | delay_time.DelayResponses":
     """The evaluator's own sampled responses (reference->y, load->y, reference->u) for
     internally stable controllers, on the same time grid the metrics were computed from
-    (for plots). Raises ValueError if a loop is not stable."""
+    (for plots). With dead time they come from the delay equation (delay_time); the Padé
+    model of ``pade_order`` only sets the horizon. Raises ValueError if a loop is not stable."""
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
     rp = plant.with_pade(pade_order) if plant.delay else plant
     char = stability.characteristic(rp.num, rp.den, cnum, cden)
@@ -284,6 +292,8 @@ def step_responses(plant: TransferFunction, cnum: np.ndarray, cden: np.ndarray,
     stable, _, decay = stability.pole_summary(poles)
     if not stable.all():
         raise ValueError("step responses are defined for internally stable loops only")
-    nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
     with threadpool_limits(limits=1, user_api="blas"):
+        if plant.delay:
+            return delay_time.delay_step_responses(plant.num, plant.den, cnum, cden, plant.delay, decay)
+        nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
         return time.simulate(char, nums, _pole_scale(char), decay, poles)

@@ -144,7 +144,7 @@ def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirem
            time_limit: float = typer.Option(None, "--time-limit", min=0.1, help="seconds of search"),
            seed: int = typer.Option(None, "--seed", min=0, help="random seed (deterministic per seed and budget)"),
            out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>)"),
-           resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder"),
+           resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder, or extend a finished one (with a larger --budget or a --time-limit)"),
            top: int = typer.Option(10, "--top", min=1, help="rows to print"),
            report: bool = typer.Option(False, "--report", help="write the design report at the end"),
            as_json: bool = typer.Option(False, "--json", help="print {run, rows} as JSON")) -> None:
@@ -155,7 +155,8 @@ def design(spec_path: Path = typer.Argument(None, metavar="SPEC", help="requirem
         fail("design: give a SPEC file, or --resume RUN to continue a run")
     try:
         if resume is not None:
-            run = run_search(None, "", resume=resume, on_progress=_progress_printer(not as_json))
+            run = run_search(None, "", resume=resume, on_progress=_progress_printer(not as_json),
+                             budget=budget, time_limit=time_limit)
         else:
             spec = _load(spec_path)
             text = spec_path.read_text(encoding="utf-8")

@@ -59,8 +59,13 @@ def open_run(folder: Path) -> Run:
 def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Settings | None = None,
                resume: Path | None = None, warm_params: np.ndarray | None = None,
                inherited: pd.DataFrame | None = None, extra_manifest: dict | None = None,
-               on_progress=None) -> Run:
-    """Create (or resume) a run folder and search until the budget or time limit is used."""
+               on_progress=None, budget: int | None = None, time_limit: float | None = None) -> Run:
+    """Create (or resume) a run folder and search until the budget or time limit is used.
+
+    Resuming continues an interrupted run, and extends a finished one: ``budget`` is the
+    new cap on the run's total evaluations, ``time_limit`` the seconds of search for this
+    session (default: the run's own limit). A finished run whose budget is used up and
+    that is given no larger budget is reported as an error instead of doing nothing."""
     if resume is not None:
         run = open_run(resume)
         spec, store, manifest = run.spec, run.store, run.manifest
@@ -69,6 +74,20 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings: Se
         settings = Settings(**manifest["settings"])
         previous = store.load()
         state = store.load_json("state.json")
+        used = int(state.get("evaluated", 0))
+        if budget is not None:
+            if budget <= used:
+                raise ArchiveError(f"{resume}: --budget {budget} is not larger than the {used} evaluations the "
+                                   "run already used; give a larger total budget to extend it")
+            settings.budget = int(budget)
+        elif used >= settings.budget:
+            raise ArchiveError(f"{resume}: the run already used its budget of {settings.budget} evaluations; "
+                               "give --budget N (a larger total) to extend it")
+        # the time limit counts this session's search time
+        state["search_s"] = 0.0
+        state.pop("search_s_before", None)
+        settings.time_limit_s = float(time_limit if time_limit is not None else settings.time_limit_s)
+        manifest["settings"] = settings.__dict__.copy()
     else:
         settings = settings or settings_from(spec)
         folder = Path(out) if out else default_run_dir(spec.name)

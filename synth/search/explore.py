@@ -296,7 +296,7 @@ class Search:
         left = self.settings.time_limit_s - self._elapsed()
         if not np.isfinite(left):
             return np.inf
-        share = {"seeds": 0.3, "sobol": 0.4, "optuna": 0.3, "front": 0.5, "convex": 0.3}[ph]
+        share = {"seeds": 0.3, "sobol": 0.3, "optuna": 0.2, "front": 0.5, "convex": 0.3}[ph]
         if self.state["round"] > 0:
             share = min(share, 0.25)
         return self._elapsed() + share * left

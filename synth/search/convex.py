@@ -36,12 +36,10 @@ with parameters so that each CCP iteration only updates numbers.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from itertools import permutations
-
 import numpy as np
 
-GRID_POINTS = 300
-GRID_DECADES = 3.0          # grid spans the current crossover times/divided by 10^3
+GRID_PER_DECADE = 80
+GRID_DECADES = 2.0          # grid reaches 10^2 beyond the outermost corner or crossover
 TIGHTEN = 0.005             # inner margin on every grid constraint (relative)
 CCP_ITER = 12
 TRUST = 0.5                 # trust region per CCP iteration, relative to each coefficient
@@ -64,6 +62,9 @@ class FixedPoleLoop:
     x0: np.ndarray              # current numerator coefficients (magnitudes)
     poles: np.ndarray           # the fixed poles (lead-lag) or [tf] (pid) or [] (pi)
     all_positive: bool = False  # PI/PID: every coefficient is a gain and must stay positive
+    lin: np.ndarray | None = None   # rows M of the linear admissibility constraints M x <= 0
+    zeros: np.ndarray | None = None  # lead-lag: every stage zero (the free stage's is x[1]/x[0])
+    stage: int | None = None         # lead-lag: the stage whose zero is free
 
 
 @dataclass
@@ -95,22 +96,36 @@ def limits_from(requirements: dict) -> Limits:
     return Limits(r=max(r) if r else None, mt=mt, mcs=mcs, mps=mps, claims=tuple(claims))
 
 
-def _crossover(w: np.ndarray, L: np.ndarray) -> float:
+def loop_grid(plant, family, params: np.ndarray) -> np.ndarray:
+    """Frequency grid around the current loop: every corner frequency of plant and controller
+    and the gain crossovers, widened by 10^GRID_DECADES each way, GRID_PER_DECADE points a decade."""
+    num, den = family.controllers(np.asarray(params, float)[None, :])
+    roots = np.concatenate([np.roots(plant.num), np.roots(plant.den), np.roots(num[0]), np.roots(den[0])])
+    corners = np.abs(roots[np.abs(roots) > 1e-12])
+    if plant.delay:
+        corners = np.append(corners, 1.0 / plant.delay)
+    wide = np.logspace(-6, 6, 1201)
+    L = plant(1j * wide) * np.polyval(num[0], 1j * wide) / np.polyval(den[0], 1j * wide)
     mag = np.abs(L)
-    i = np.flatnonzero((mag[:-1] >= 1) & (mag[1:] < 1))
-    return float(w[i[-1]]) if i.size else float(w[np.argmin(np.abs(np.log(np.maximum(mag, 1e-300))))])
+    cross = wide[np.flatnonzero((mag[:-1] - 1) * (mag[1:] - 1) < 0)]
+    f = np.log10(np.concatenate([corners, cross])) if corners.size + cross.size else np.zeros(1)
+    lo, hi = f.min() - GRID_DECADES, f.max() + GRID_DECADES
+    n = int(np.clip((hi - lo) * GRID_PER_DECADE, 100, 1500))
+    return np.logspace(lo, hi, n)
 
 
-def fixed_pole_loop(plant, family, params: np.ndarray, w: np.ndarray | None = None) -> FixedPoleLoop | None:
-    """The linear-in-numerator loop of one parameter vector (None where the family has no such form)."""
+def fixed_pole_loop(plant, family, params: np.ndarray, w: np.ndarray | None = None, stage: int | None = None,
+                    max_ratio: float = 1e3) -> FixedPoleLoop | None:
+    """The linear-in-numerator loop of one parameter vector (None where the family has no such form).
+
+    PI: x = (kp, ki); PID with the filter tf fixed: x = (kp, ki, kd); lead-lag with every pole
+    and all zeros but the one of ``stage`` fixed: x = (K, K z_stage), with the stage's
+    lead/lag order and ``max_ratio`` as linear constraints (keeps the zeros real, so the
+    result maps back to the family)."""
     p = np.asarray(params, float).ravel()
     sgn = family.sign
     if w is None:
-        num, den = family.controllers(p[None, :])
-        wide = np.logspace(-4, 5, 900)
-        L = plant(1j * wide) * np.polyval(num[0], 1j * wide) / np.polyval(den[0], 1j * wide)
-        wc = _crossover(wide, L)
-        w = np.logspace(np.log10(wc) - GRID_DECADES, np.log10(wc) + GRID_DECADES, GRID_POINTS)
+        w = loop_grid(plant, family, p)
     s = 1j * w
     P = plant(s)
     if family.kind == "pi":
@@ -123,20 +138,31 @@ def fixed_pole_loop(plant, family, params: np.ndarray, w: np.ndarray | None = No
         Ac = sgn * np.stack([np.ones_like(s), 1.0 / s, s / (tf * s + 1.0)], axis=1)
         return FixedPoleLoop(w, P[:, None] * Ac, Ac, P, np.array([0.0, 1.0, 0.0]), np.array([1.0, 0.0, 1.0 / tf]),
                              np.array([kp, ki, kd]), np.array([tf]), True)
-    # lead-lag: C = sign * (sum_j a_j s^(n-j)) / (prod (s + p_i) * s^integrator)
+    # lead-lag: one stage's zero free, C = sign * (a0 s + a1) * F(s) with F the rest of the
+    # controller at unit gain (the other zeros and every pole fixed); a0 = K, a1 = K z_j
     n = len(family.pairs)
+    if n == 0:
+        return None
+    j = 0 if stage is None else int(stage) % n
     poles = np.array([10.0 ** p[pc] for _, _, pc in family.pairs])
     zeros = np.array([10.0 ** p[zc] for _, zc, _ in family.pairs])
-    a = 10.0 ** p[0] * np.poly(-zeros) if n else np.array([10.0 ** p[0]])
-    D = np.polyval(np.poly(-poles), s) if n else np.ones_like(s)
+    others = np.delete(zeros, j)
+    F = np.polyval(np.poly(-others), s) if others.size else np.ones_like(s)
+    D = np.polyval(np.poly(-poles), s)
     if family.integrator:
         D = D * s
-    Ac = sgn * np.stack([s ** (n - j) / D for j in range(n + 1)], axis=1)
-    prod_p = float(np.prod(poles)) if n else 1.0
-    gain_row = np.zeros(n + 1)
-    gain_row[-1] = 1.0 / prod_p           # lim s C(s) with integrator, C(0) without
-    hf_row = None if family.integrator else np.eye(n + 1)[0]
-    return FixedPoleLoop(w, P[:, None] * Ac, Ac, P, gain_row, hf_row, a.real.astype(float), poles)
+    F = F / D
+    Ac = sgn * np.stack([s * F, F], axis=1)
+    gain_row = np.array([0.0, float(np.prod(others) / np.prod(poles))])  # lim s C (integrator) or C(0)
+    hf_row = None if family.integrator else np.array([1.0, 0.0])          # C(inf) = K
+    pj, role = poles[j], family.pairs[j][0]
+    eps = 1e-6
+    if role == "lead":       # p/ratio <= z < p
+        lin = np.array([[-pj * (1 - eps), 1.0], [pj / max_ratio, -1.0]])
+    else:                    # p < z <= p*ratio
+        lin = np.array([[pj * (1 + eps), -1.0], [-pj * max_ratio, 1.0]])
+    x0 = np.array([10.0 ** p[0], 10.0 ** p[0] * zeros[j]])
+    return FixedPoleLoop(w, P[:, None] * Ac, Ac, P, gain_row, hf_row, x0, poles, False, lin, zeros, j)
 
 
 class ConvexProblem:
@@ -158,6 +184,8 @@ class ConvexProblem:
         dist = self.G @ xs + self.b                  # inner approximation of |1 + L|
         # positivity: every PI/PID gain; the lead-lag gain K (leading coefficient)
         cons = [x >= 1e-9] if loop.all_positive else [x[0] >= 1e-9]
+        if loop.lin is not None:
+            cons.append(loop.lin @ xs <= 0)
         # trust region: the grid only sees frequencies around the current loop
         cons.append(cp.abs(x - self.xc) <= self.rad)
         t = TIGHTEN
@@ -223,29 +251,22 @@ class ConvexProblem:
         return ok
 
 
-def params_from_numerator(family, xabs: np.ndarray, poles: np.ndarray) -> np.ndarray | None:
+def params_from_numerator(family, xabs: np.ndarray, poles: np.ndarray, loop_zeros=None,
+                          stage: int | None = None) -> np.ndarray | None:
     """Map solved numerator coefficients (magnitudes) with the fixed poles back to the family's
     parameter vector (structures.params_from_pid / params_from_roots); None if not representable
-    (complex or non-negative zeros, or no stage assignment meeting lead z < p / lag z > p)."""
+    (a non-positive gain or zero, or a stage order lead z < p / lag z > p not met)."""
     x = np.asarray(xabs, float)
     if family.kind == "pi":
         return family.params_from_pid(x[0], x[1]) if np.all(x > 0) else None
     if family.kind == "pid":
         return family.params_from_pid(x[0], x[1], x[2], poles[0]) if np.all(x > 0) else None
-    if x[0] <= 0:
+    if x[0] <= 0 or x[1] <= 0 or loop_zeros is None:
         return None
-    n = len(family.pairs)
-    if n == 0:
-        return np.log10(x[:1])
-    r = np.roots(x)
-    if r.size != n or np.any(np.abs(r.imag) > 1e-9 * np.maximum(np.abs(r), 1e-300)) or np.any(r.real >= 0):
-        return None
-    zeros = np.sort(-r.real)
-    for perm in permutations(range(n)):
-        z = zeros[list(perm)]
-        if all((zi < pi) if role == "lead" else (zi > pi) for (role, _, _), zi, pi in zip(family.pairs, z, poles)):
-            return family.params_from_roots(family.sign * x[0], z, poles)
-    return None
+    z = np.array(loop_zeros, float).copy()
+    z[stage] = x[1] / x[0]
+    q = family.params_from_roots(family.sign * x[0], z, poles)
+    return q if bool(family.admissible(q[None, :])[0]) else None
 
 
 def _pole_variants(family, params: np.ndarray, step: float) -> np.ndarray:
@@ -261,29 +282,31 @@ def _pole_variants(family, params: np.ndarray, step: float) -> np.ndarray:
     return np.array(out)
 
 
-def numerator_designs(plant, family, params: np.ndarray, requirements: dict,
-                      levels=HF_LEVELS) -> tuple[np.ndarray, list[tuple[str, ...]]]:
+def numerator_designs(plant, family, params: np.ndarray, requirements: dict, levels=HF_LEVELS,
+                      max_ratio: float = 1e3) -> tuple[np.ndarray, list[tuple[str, ...]]]:
     """Convex designs for one parameter vector's poles: (k, d) parameter vectors and the grid
-    requirements each claims to meet."""
-    loop = fixed_pole_loop(plant, family, params)
-    if loop is None:
-        return np.zeros((0, family.dim)), []
+    requirements each claims to meet (only designs meeting every grid limit are returned)."""
     lim = limits_from(requirements)
-    prob = ConvexProblem(loop, lim)
-    h0 = float(loop.hf_row @ loop.x0) if loop.hf_row is not None else None
+    stages = range(len(family.pairs)) if family.kind == "lead-lag" else (None,)
     cap = requirements.get("max_control_peak")
     out, claims = [], []
-    for lv in (levels if h0 is not None else (None,)):
-        h = None if lv is None else h0 * lv
-        if h is not None and cap is not None:
-            h = min(h, float(cap))
-        x = prob.solve(h)
-        if x is None or not prob.grid_ok(x):
+    for j in stages:
+        loop = fixed_pole_loop(plant, family, params, stage=j, max_ratio=max_ratio)
+        if loop is None:
             continue
-        q = params_from_numerator(family, x, loop.poles)
-        if q is not None and np.all(np.isfinite(q)):
-            out.append(q)
-            claims.append(lim.claims)
+        prob = ConvexProblem(loop, lim)
+        h0 = float(loop.hf_row @ loop.x0) if loop.hf_row is not None else None
+        for lv in (levels if h0 is not None else (None,)):
+            h = None if lv is None else h0 * lv
+            if h is not None and cap is not None:
+                h = min(h, float(cap))
+            x = prob.solve(h)
+            if x is None or not prob.grid_ok(x):
+                continue
+            q = params_from_numerator(family, x, loop.poles, loop.zeros, loop.stage)
+            if q is not None and np.all(np.isfinite(q)):
+                out.append(q)
+                claims.append(lim.claims)
     return (np.array(out) if out else np.zeros((0, family.dim))), claims
 
 
@@ -318,7 +341,7 @@ def _starts(search, k: int) -> np.ndarray:
 def convex_step(search) -> None:
     """Alternate convex numerator designs and pole moves from the front's best points."""
     fam = search.space.family
-    if fam.kind == "lead-lag" and len(fam.pairs) > 3:
+    if fam.kind == "lead-lag" and not fam.pairs:
         return
     r = int(search.state.get("round", 0))
     centres = _starts(search, MAX_STARTS if r == 0 else 1 + r % MAX_STARTS)
@@ -332,7 +355,8 @@ def convex_step(search) -> None:
             for v in _pole_variants(fam, c, steps[i]):
                 if search._out_of_time():
                     break
-                q, cl = numerator_designs(search.plant, fam, v, search.requirements)
+                q, cl = numerator_designs(search.plant, fam, v, search.requirements,
+                                          max_ratio=10.0 ** search.space.log_ratio)
                 search.state["convex_solves"] = search.state.get("convex_solves", 0) + 1
                 batch += list(q)
                 claims += cl

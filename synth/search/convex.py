@@ -35,6 +35,7 @@ with parameters so that each CCP iteration only updates numbers.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, field
 import numpy as np
 
@@ -47,6 +48,7 @@ CCP_TOL = 1e-5
 HF_LEVELS = (0.5, 1.0, 2.0)   # high-frequency gain caps relative to the start's
 POLE_STEP = 0.15              # log10 factor of a pole move
 MAX_STARTS = 3
+FIRST_SOLVE_S = 0.5           # assumed cost of the first design before one is measured
 
 
 @dataclass
@@ -210,7 +212,7 @@ class ConvexProblem:
         self.G.value = np.real(np.conj(e0)[:, None] * self.loop.A)
         self.b.value = np.real(np.conj(e0))
 
-    def solve(self, hmax: float | None = None, x_start: np.ndarray | None = None) -> np.ndarray | None:
+    def solve(self, hmax: float | None = None, x_start: np.ndarray | None = None, stop=None) -> np.ndarray | None:
         """CCP from ``x_start`` (default the loop's own coefficients); coefficient magnitudes or None."""
         cp = self.cp
         xk = np.array(self.loop.x0 if x_start is None else x_start, float)
@@ -218,6 +220,8 @@ class ConvexProblem:
                                 else self.loop.hf_row @ xk)
         best = None
         for _ in range(CCP_ITER):
+            if stop is not None and stop():
+                return None              # out of time: an unfinished iteration returns nothing
             self._linearise(xk)
             xr = xk / self.scale
             self.xc.value = xr
@@ -283,7 +287,7 @@ def _pole_variants(family, params: np.ndarray, step: float) -> np.ndarray:
 
 
 def numerator_designs(plant, family, params: np.ndarray, requirements: dict, levels=HF_LEVELS,
-                      max_ratio: float = 1e3) -> tuple[np.ndarray, list[tuple[str, ...]]]:
+                      max_ratio: float = 1e3, stop=None) -> tuple[np.ndarray, list[tuple[str, ...]]]:
     """Convex designs for one parameter vector's poles: (k, d) parameter vectors and the grid
     requirements each claims to meet (only designs meeting every grid limit are returned)."""
     lim = limits_from(requirements)
@@ -300,7 +304,7 @@ def numerator_designs(plant, family, params: np.ndarray, requirements: dict, lev
             h = None if lv is None else h0 * lv
             if h is not None and cap is not None:
                 h = min(h, float(cap))
-            x = prob.solve(h)
+            x = prob.solve(h, stop=stop)
             if x is None or not prob.grid_ok(x):
                 continue
             q = params_from_numerator(family, x, loop.poles, loop.zeros, loop.stage)
@@ -348,16 +352,19 @@ def convex_step(search) -> None:
     if not len(centres):
         return
     steps = np.full(len(centres), POLE_STEP)
+    est = [FIRST_SOLVE_S]          # measured seconds per numerator design (compile included)
     search.state.setdefault("convex_discarded", 0)
     for _ in range(2):
         batch, claims, owner = [], [], []
         for i, c in enumerate(centres):
             for v in _pole_variants(fam, c, steps[i]):
-                if search._out_of_time():
+                if search._out_of_time() or search.time_left() < 1.5 * est[0]:
                     break
+                t0 = time.perf_counter()
                 q, cl = numerator_designs(search.plant, fam, v, search.requirements,
-                                          max_ratio=10.0 ** search.space.log_ratio)
+                                          max_ratio=10.0 ** search.space.log_ratio, stop=search._out_of_time)
                 search.state["convex_solves"] = search.state.get("convex_solves", 0) + 1
+                est[0] = max(time.perf_counter() - t0, 0.5 * est[0])
                 batch += list(q)
                 claims += cl
                 owner += [i] * len(q)

@@ -51,6 +51,10 @@ PHASE_LABELS = {"seeds": "seeds", "sobol": "screening", "optuna": "model-based",
                 "convex": "convex step", "polish": "front refinement", "done": "done"}
 ROUND0 = ["seeds", "sobol", "optuna", "front", "convex", "front"]
 ROUNDS = ["sobol", "optuna", "front", "convex", "front"]
+PHASE_SOURCES = {"seeds": "seed", "sobol": "sobol", "optuna": "tpe", "front": "front", "polish": "front",
+                 "convex": "convex"}
+TRIM_SAFETY = 1.5         # the last batch of a phase is trimmed to 1/1.5 of the time its rows would take
+UNKNOWN_COST = 5.0        # first batch of a source: rows assumed 5x the dearest seen (screening is cheap)
 HV_EVERY_S = 0.25         # recompute the progress hypervolume at most this often
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
 OPTUNA_BATCH = 32
@@ -106,12 +110,16 @@ class Search:
         self._t0 = 0.0
         self._feasible = 0
         self.slow = float(getattr(plant, "delay", 0.0) or 0.0) > 0.0
-        self._sec_per_row = None          # measured evaluation cost, for trimming the last batch
+        self._sec_per_row: dict[str, float] = {}   # measured cost per row and source, to trim the last batch
         self._front = np.zeros((0, len(self.objectives)))
         self._hv = None
         self._hv_at = -1.0
         self._hv_dirty = False
         self._phase_end = np.inf
+        try:                              # the convex step's solver: imported before the clock starts
+            import cvxpy  # noqa: F401
+        except ImportError:               # pragma: no cover - a declared dependency
+            pass
 
     # ----------------------------------------------------------------- plumbing
     @property
@@ -147,7 +155,8 @@ class Search:
         t0 = _time.perf_counter()
         df = self.evaluate_params(params)
         dt = (_time.perf_counter() - t0) / len(df)
-        self._sec_per_row = dt if self._sec_per_row is None else 0.7 * self._sec_per_row + 0.3 * dt
+        old = self._sec_per_row.get(source)
+        self._sec_per_row[source] = dt if old is None else max(dt, 0.5 * old + 0.5 * dt)
         df.insert(0, "id", np.arange(self.state["next_id"], self.state["next_id"] + len(df)))
         df.insert(1, "source", source)
         for i, c in enumerate(self.ucols):
@@ -187,12 +196,20 @@ class Search:
         the time left (the clock only trims when it binds, so budget-bound runs stay
         deterministic)."""
         n = min(int(n), self._left())
-        if self._sec_per_row and n > 0:
+        src = PHASE_SOURCES.get(self.state.get("phase"), "")
+        spr = self._sec_per_row.get(src)
+        if spr is None and self._sec_per_row:     # a new kind of batch: assume a full evaluation's cost
+            spr = UNKNOWN_COST * max(self._sec_per_row.values())
+        if spr and n > 0:
             left_s = min(self.settings.time_limit_s, self._phase_end) - self._elapsed()
-            fits = int(left_s / self._sec_per_row)
+            fits = int(left_s / (TRIM_SAFETY * spr))
             if fits < n:
                 n = max(fits, 0)
         return max(n, 0)
+
+    def time_left(self) -> float:
+        """Seconds until the time limit or the current phase's share of it."""
+        return min(self.settings.time_limit_s, self._phase_end) - self._elapsed()
 
     def batch_size(self, n: int) -> int:
         """Batch size for a phase: ``n`` for rational plants, SLOW_BATCH for dead-time plants."""

@@ -54,6 +54,7 @@ ROUNDS = ["sobol", "optuna", "front", "convex", "front"]
 PHASE_SOURCES = {"seeds": "seed", "sobol": "sobol", "optuna": "tpe", "front": "front", "polish": "front",
                  "convex": "convex"}
 TRIM_SAFETY = 1.5         # the last batch of a phase is trimmed to 1/1.5 of the time its rows would take
+RESTORE_POLLS = 8         # batches of the early feasibility restoration
 UNKNOWN_COST = 5.0        # first batch of a source: rows assumed 5x the dearest seen (screening is cheap)
 HV_EVERY_S = 0.25         # recompute the progress hypervolume at most this often
 MAX_DRAW_FACTOR = 20      # give up on quasi-random draws when the prefilter rejects nearly all
@@ -354,6 +355,11 @@ class Search:
             before = self.state["evaluated"]
             self.evaluate_u(u, "sobol")
             self.state["sobol_evaluated"] += self.state["evaluated"] - before
+            if self._feasible == 0 and not self.state.get("restored") and self._left() > 0:
+                # nothing feasible after the seeds and a first screening batch: a short
+                # feasibility restoration from the least violating points, then screen on
+                self.state["restored"] = True
+                front_refine(self, max_polls=RESTORE_POLLS)
 
     def _phase_optuna(self) -> None:
         import optuna

@@ -155,8 +155,9 @@ def _starts(search, df, W, scal, c_all):
     return U[idx], idx
 
 
-def front_refine(search, round_: int | None = None) -> None:
-    """Refine the front of ``search`` in place until converged, out of budget or out of time."""
+def front_refine(search, round_: int | None = None, max_polls: int | None = None) -> None:
+    """Refine the front of ``search`` in place until converged, out of budget or out of time
+    (or after ``max_polls`` batches: the short feasibility restoration during screening)."""
     df = search.all_rows()
     if df.empty:
         return
@@ -188,7 +189,9 @@ def front_refine(search, round_: int | None = None) -> None:
     options = search.options
     search.options = replace(options, screen=False)
     try:
-        while search._left() > 0 and not search._out_of_time():
+        polls = 0
+        while search._left() > 0 and not search._out_of_time() and (max_polls is None or polls < max_polls):
+            polls += 1
             active = np.flatnonzero(step > MIN_STEP)
             if not active.size:
                 break

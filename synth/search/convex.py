@@ -48,6 +48,8 @@ CCP_TOL = 1e-5
 HF_LEVELS = (0.5, 1.0, 2.0)   # high-frequency gain caps relative to the start's
 POLE_STEP = 0.15              # log10 factor of a pole move
 MAX_STARTS = 3
+CONVEX_CALLS = 12             # numerator designs (each: stages x levels CCP solves) per convex phase
+RESTART_EVERY = 3             # restart rounds with a convex step (half the calls)
 FIRST_SOLVE_S = 0.5           # assumed cost of the first design before one is measured
 
 
@@ -348,6 +350,11 @@ def convex_step(search) -> None:
     if fam.kind == "lead-lag" and not fam.pairs:
         return
     r = int(search.state.get("round", 0))
+    # solver work is bounded by a count (deterministic), not by evaluations: the step
+    # costs solver time but few evaluations, so a budget-bound run would otherwise repeat it
+    calls = CONVEX_CALLS if r == 0 else (CONVEX_CALLS // 2 if r % RESTART_EVERY == 0 else 0)
+    if calls <= 0:
+        return
     centres = _starts(search, MAX_STARTS if r == 0 else 1 + r % MAX_STARTS)
     if not len(centres):
         return
@@ -358,8 +365,9 @@ def convex_step(search) -> None:
         batch, claims, owner = [], [], []
         for i, c in enumerate(centres):
             for v in _pole_variants(fam, c, steps[i]):
-                if search._out_of_time() or search.time_left() < 1.5 * est[0]:
+                if search._out_of_time() or search.time_left() < 1.5 * est[0] or calls <= 0:
                     break
+                calls -= 1
                 t0 = time.perf_counter()
                 q, cl = numerator_designs(search.plant, fam, v, search.requirements,
                                           max_ratio=10.0 ** search.space.log_ratio, stop=search._out_of_time)

@@ -140,12 +140,16 @@ def design(spec, *, budget: int | None = None, time_limit_s: float | None = None
     return Design(run)
 
 
-def resume(path, *, on_progress: Callable | None = None, executor=None) -> "Design":
-    """Continue an interrupted run folder where its last stored batch ended."""
+def resume(path, *, budget: int | None = None, time_limit_s: float | None = None,
+           on_progress: Callable | None = None, executor=None) -> "Design":
+    """Continue an interrupted run folder where its last stored batch ended, or extend a
+    finished one: ``budget`` is the new total evaluation cap, ``time_limit_s`` the seconds
+    of search for this call."""
     from .runs import run_search
     try:
         with writing(Path(path)):
-            run = run_search(None, "", resume=Path(path), on_progress=on_progress, executor=executor)
+            run = run_search(None, "", resume=Path(path), on_progress=on_progress, executor=executor,
+                             budget=budget, time_limit=time_limit_s)
     except ArchiveError as e:
         raise SynthError(str(e)) from None
     return Design(run)

@@ -140,7 +140,8 @@ def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC",
            seed: int = typer.Option(None, "--seed", min=0, help="random seed (deterministic per seed and budget)"),
            out: Path = typer.Option(None, "--out", help="run folder to create (default runs/<name>-<time>); "
                                     "with several specs the folder of their run folders and summary.csv"),
-           resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder"),
+           resume: Path = typer.Option(None, "--resume", help="continue an interrupted run folder, or extend a finished one "
+                                                          "(with a larger --budget or a --time-limit)"),
            top: int = typer.Option(10, "--top", min=1, help="rows to print"),
            report: bool = typer.Option(False, "--report", help="write the design report at the end"),
            quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress display"),
@@ -171,7 +172,8 @@ def design(spec_paths: list[Path] = typer.Argument(None, metavar="SPEC",
         try:
             if resume is not None:
                 settings = _open(resume).run.manifest.get("settings") or {}
-                d = _search(lambda pr: api.resume(resume, on_progress=pr, executor=executor), quiet, settings)
+                d = _search(lambda pr: api.resume(resume, budget=budget, time_limit_s=time_limit, on_progress=pr,
+                                                  executor=executor), quiet, settings)
             else:
                 d = _design_one(spec_paths[0], budget, time_limit, seed, out, quiet, executor)
         except Exception as e:

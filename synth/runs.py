@@ -76,7 +76,8 @@ def open_run(folder: Path) -> Run:
 def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=None,
                resume: Path | None = None, warm_params: np.ndarray | None = None,
                inherited=None, extra_manifest: dict | None = None,
-               on_progress=None, shown: int = SHOWN_STORED, executor=None) -> Run:
+               on_progress=None, shown: int = SHOWN_STORED, executor=None,
+               budget: int | None = None, time_limit: float | None = None) -> Run:
     """Create (or resume) a run folder and search until the budget or time limit is used.
 
     The folder is locked for writing (:mod:`synth.runlock`) from start to end; a second
@@ -84,6 +85,10 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
     ranking and the certified records of the first ``shown`` rows are stored.
     ``executor`` (synth.executor) runs the evaluator's batches; None runs them in-process.
     Storage stays here in the calling process: one writer per run folder.
+    Resuming continues an interrupted run, and extends a finished one: ``budget`` is the
+    new cap on the run's total evaluations, ``time_limit`` the seconds of search for this
+    session (default: the run's own limit). A finished run whose budget is used up and
+    that is given no larger budget is reported as an error instead of doing nothing.
     """
     import pandas as pd
     from .search.explore import Settings
@@ -101,6 +106,20 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
             settings = Settings(**manifest["settings"])
             previous = store.load()
             state = store.load_state()
+            used = int(state.get("evaluated", 0))
+            if budget is not None:
+                if budget <= used:
+                    raise ArchiveError(f"{resume}: --budget {budget} is not larger than the {used} evaluations "
+                                       "the run already used; give a larger total budget to extend it")
+                settings.budget = int(budget)
+            elif used >= settings.budget:
+                raise ArchiveError(f"{resume}: the run already used its budget of {settings.budget} evaluations; "
+                                   "give --budget N (a larger total) to extend it")
+            # the time limit counts this session's search time
+            state["search_s"] = 0.0
+            state.pop("search_s_before", None)
+            settings.time_limit_s = float(time_limit if time_limit is not None else settings.time_limit_s)
+            manifest["settings"] = settings.__dict__.copy()
         else:
             settings = settings or settings_from(spec)
             manifest = new_manifest(spec, settings, extra_manifest)

@@ -379,6 +379,9 @@ def fallout_text(before, after, requirements: dict) -> str:
     now = after.set_index("id")
     out = []
     for cid in front["id"]:
+        if cid not in now.index:      # merged into a less-violating near-copy when re-ranked
+            out.append(f"  #{int(cid)} falls out: infeasible, a near-copy of a less-violating design")
+            continue
         r = now.loc[cid]
         if bool(r["feasible"]):
             continue

@@ -1,81 +1,260 @@
-"""Local polishing of the best candidates: a batched compass (pattern) search.
+"""Whole-front refinement: batched, constraint-aware local searches along Chebyshev directions.
 
-Around each of the best M candidates, the 2d coordinate moves of the current
-step in the unit cube (plus the same number of random directions) are evaluated
-in one batch; a candidate moves to the best trial point that improves it and
-halves its step otherwise (compass search; Kolda, Lewis & Torczon, "Optimization
-by direct search", SIAM Review 45, 2003). Improvement means: for a feasible
-candidate, a feasible point with a smaller sum of log objectives; for an
-infeasible one, a smaller total normalised violation. Batching keeps the
-evaluator vectorised: scipy.optimize's one-point-at-a-time calls would pay the
-evaluator's fixed per-call cost (the time-grid loop) for every point.
+Each local search minimises one scalarisation of the (log10) objectives: the
+augmented weighted Chebyshev function
+
+    g_w(f) = max_i w_i (f_i - z_i) / s_i + rho * sum_i (f_i - z_i) / s_i
+
+with z a utopian point half a front span below the ideal point, s the front's
+span per objective and rho = 1e-4 (Miettinen, *Nonlinear Multiobjective
+Optimization*, Kluwer 1999, sec. 3.4.5: every Pareto-optimal point minimises
+g_w for some w, and the augmentation excludes weakly optimal ones). The
+weights are the extreme of every objective (w = e_i) and the inverses of an
+evenly spread simplex lattice between them (Das & Dennis, SIAM J. Optim. 8,
+1998), so the ends of the front are refined as well as the knee. Restart
+rounds use a denser lattice, filling the gaps between earlier directions.
+
+Constraints (the requirements, normalised shortfalls c_k = -slack_k / scale_k,
+c_k <= 0 met) enter through the Powell-Hestenes-Rockafellar augmented
+Lagrangian
+
+    Phi = g_w + (1 / (2 mu)) * sum_k (max(0, lam_k + mu c_k)^2 - lam_k^2),
+
+minimised by a compass search (Kolda, Lewis & Torczon, SIAM Review 45, 2003);
+when the inner search converges the multipliers are updated,
+lam_k <- max(0, lam_k + mu c_k), and mu grows if the violation did not fall
+enough (Conn, Gould & Toint, SIAM J. Numer. Anal. 28, 1991). An active
+constraint (an Ms limit, say) therefore does not stall the search: the merit
+is finite on both sides of the boundary and the iterates slide along it. To
+turn iterates just outside the boundary into feasible designs, each poll also
+evaluates points on the segment from the search's best feasible point towards
+its current iterate (a bisection-style feasibility restoration). Without any
+feasible design yet, g_w = 0 and the same searches minimise the violation.
+
+All local searches poll in ONE evaluator batch per iteration, through
+``Search.evaluate_u`` (and so ``Search.evaluate_params``). The refinement asks
+for full evaluations (no screening), because the merit needs every objective
+also just outside the feasible set.
 """
 
 from __future__ import annotations
 
+from dataclasses import replace
+from itertools import combinations
+
 import numpy as np
 
-from ..rank import violation
+from ..rank import _scale, non_dominated_sort
 
-POLISH_MEMBERS = 8
 INITIAL_STEP = 0.05
-MIN_STEP = 1e-4
+MAX_STEP = 0.2
+MIN_STEP = 2e-5
+MAX_OUTER = 6
+RHO = 1e-4
+MU0 = 100.0
+SEGMENT = (0.5, 0.8, 0.95, 0.99)       # points on the feasible-to-iterate segment
+BASE_LATTICE = {1: 1, 2: 7, 3: 4}
+MAX_LATTICE = {1: 1, 2: 15, 3: 8}
 
 
-def _merit(search, df):
-    """(feasible, merit) for rows: merit = summed log objectives if feasible else violation."""
-    feas = np.array(df["feasible"].to_numpy(bool))
-    obj = search.objective_matrix(df).sum(axis=1)
-    vio = violation(df, search.requirements)
-    return feas, np.array(np.where(feas, obj, vio))
+def lattice(m: int, h: int) -> np.ndarray:
+    """All weight vectors with entries k/h summing to 1 (Das & Dennis 1998), (n, m)."""
+    if m == 1:
+        return np.ones((1, 1))
+    pts = []
+    for bars in combinations(range(h + m - 1), m - 1):
+        prev, row = -1, []
+        for b in bars:
+            row.append(b - prev - 1)
+            prev = b
+        row.append(h + m - 2 - prev)
+        pts.append(row)
+    return np.array(pts, float) / h
 
 
-def compass_polish(search) -> None:
-    """Polish the elite of ``search`` in place until its budget or time runs out."""
-    elite = search._elite(POLISH_MEMBERS)
-    if elite.empty:
+def directions(m: int, round_: int = 0) -> np.ndarray:
+    """Chebyshev weights: the m extremes (unit vectors) then inverse lattice rays between them."""
+    ext = np.eye(m)
+    if m == 1:
+        return ext
+    h = min(BASE_LATTICE.get(m, 3) + 2 * round_, MAX_LATTICE.get(m, 6))
+    lam = lattice(m, h)
+    lam = lam[lam.max(axis=1) < 1.0 - 1e-12]            # the vertices are the extremes
+    w = 1.0 / np.maximum(lam, 0.02)
+    w /= w.sum(axis=1, keepdims=True)
+    return np.vstack([ext, w])
+
+
+def chebyshev(Fn: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """Augmented Chebyshev values of normalised objectives Fn (n, m) under weights W (n, m)."""
+    with np.errstate(invalid="ignore"):
+        g = np.max(W * Fn, axis=1) + RHO * Fn.sum(axis=1)
+    return np.where(np.isfinite(g), g, np.inf)
+
+
+def constraint_matrix(df, requirements: dict) -> np.ndarray:
+    """Normalised shortfalls c_k = -slack_k / scale_k (<= 0 met; +inf undefined), (n, K)."""
+    cols = []
+    stable = df["internally_stable"].to_numpy(bool)
+    for key, limit in requirements.items():
+        s = df[f"slack_{key}"].to_numpy(float)
+        c = -s / _scale(key, float(limit))
+        cols.append(np.where(stable & np.isfinite(c), c, np.inf))
+    if not cols:
+        return np.where(stable, 0.0, np.inf)[:, None]
+    return np.stack(cols, axis=1)
+
+
+def al_merit(g: np.ndarray, c: np.ndarray, lam: np.ndarray, mu: np.ndarray) -> np.ndarray:
+    """Powell-Hestenes-Rockafellar augmented Lagrangian for inequality constraints c <= 0."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        t = np.maximum(0.0, lam + mu[:, None] * c)
+        phi = g + ((t ** 2 - lam ** 2) / (2.0 * mu[:, None])).sum(axis=1)
+    return np.where(np.isfinite(phi), phi, np.inf)
+
+
+class _Scalariser:
+    """Normalisation of the log objectives over the current feasible front."""
+
+    def __init__(self, search, df):
+        feas = df[df["feasible"].to_numpy(bool)]
+        self.any_feasible = not feas.empty
+        if self.any_feasible:
+            F = search.objective_matrix(feas)
+            F = F[np.all(np.isfinite(F), axis=1)]
+        if not self.any_feasible or not len(F):
+            self.any_feasible = False
+            return
+        if len(F) > 1:
+            F = F[non_dominated_sort(F) == 0]
+        lo, hi = F.min(axis=0), F.max(axis=0)
+        self.span = np.maximum(hi - lo, 0.05)
+        self.z = lo - 0.5 * self.span
+
+    def __call__(self, search, df) -> np.ndarray:
+        if not self.any_feasible:
+            return np.zeros((len(df), len(search.objectives)))
+        F = search.objective_matrix(df)
+        return (F - self.z) / self.span
+
+
+def _starts(search, df, W, scal, c_all):
+    """Start of each direction: the archive row minimising its scalarisation (feasible rows
+    first); without feasible rows, the least violating distinct rows."""
+    feas = df["feasible"].to_numpy(bool)
+    U = df[search.ucols].to_numpy(float)
+    if scal.any_feasible:
+        Fn = scal(search, df)
+        G = np.stack([chebyshev(Fn, np.broadcast_to(w, Fn.shape)) for w in W], axis=0)   # (L, n)
+        G = np.where(feas[None, :], G, np.inf)
+        idx = np.argmin(G, axis=1)
+    else:
+        v = np.where(np.isfinite(c_all).all(axis=1), np.maximum(c_all, 0).sum(axis=1), np.inf)
+        order = np.argsort(v, kind="stable")
+        idx = order[np.arange(len(W)) % max(min(len(order), len(W)), 1)]
+    return U[idx], idx
+
+
+def front_refine(search, round_: int | None = None, max_polls: int | None = None) -> None:
+    """Refine the front of ``search`` in place until converged, out of budget or out of time
+    (or after ``max_polls`` batches: the short feasibility restoration during screening)."""
+    df = search.all_rows()
+    if df.empty:
         return
-    elite = elite.iloc[:POLISH_MEMBERS]
-    d = search.space.dim
-    centres = elite[search.ucols].to_numpy(float)
-    feas, merit = _merit(search, elite)
-    steps = np.full(len(centres), INITIAL_STEP)
-    rng = np.random.default_rng(search.settings.seed + 7)
+    r = int(search.state.get("round", 0)) if round_ is None else round_
+    m, d = len(search.objectives), search.space.dim
+    scal = _Scalariser(search, df)
+    W = directions(m, r) if scal.any_feasible else np.ones((min(4, max(len(df), 1)), m))
+    if search.slow:                      # dead-time plants: extremes and a middle direction only
+        W = W[: m + (1 if m > 1 else 0)] if m > 1 else W
+    c_all = constraint_matrix(df, search.requirements)
+    x, idx = _starts(search, df, W, scal, c_all)
+    L, K = len(W), c_all.shape[1]
+    Fn0 = scal(search, df.iloc[idx])
+    g = chebyshev(Fn0, W) if scal.any_feasible else np.zeros(L)
+    c = c_all[idx]
+    lam = np.zeros((L, K))
+    mu = np.full(L, MU0)
+    phi = al_merit(g, c, lam, mu)
+    feasible = df["feasible"].to_numpy(bool)[idx]
+    xf = np.where(feasible[:, None], x, np.nan)          # best feasible point of each search
+    gf = np.where(feasible, g, np.inf)
+    step = np.full(L, INITIAL_STEP)
+    outer = np.zeros(L, int)
+    tol = INITIAL_STEP * 0.1 ** (outer + 1)
+    viol_prev = np.maximum(c, 0).max(axis=1)
+    rng = np.random.default_rng(search.settings.seed + 7 + 7919 * r)
     eye = np.eye(d)
-    while search._left() > 0 and not search._out_of_time() and np.any(steps > MIN_STEP):
-        active = np.flatnonzero(steps > MIN_STEP)
-        rand = rng.normal(size=(len(active), 2 * d, d))
-        rand /= np.linalg.norm(rand, axis=2, keepdims=True)
-        moves = np.concatenate([np.broadcast_to(np.vstack([eye, -eye]), (len(active), 2 * d, d)), rand], axis=1)
-        pts = np.clip(centres[active, None, :] + steps[active, None, None] * moves, 0.0, 1.0)
-        flat = pts.reshape(-1, d)
-        budget = search._left()
-        if budget < len(flat):
-            flat = flat[:budget]
-        df = search.evaluate_u(flat, "polish")
-        search.state["polish_rounds"] += 1
-        if df.empty:
-            steps[active] /= 2
-            continue
-        # owner of each evaluated row (the prefilter may have dropped some points)
-        u_eval = df[search.ucols].to_numpy(float)
-        owner = np.repeat(np.arange(len(active)), moves.shape[1])[: len(flat)][search.last_keep]
-        f_new, m_new = _merit(search, df)
-        for j, i in enumerate(active):
-            sel = np.flatnonzero(owner == j)
-            improved = False
-            if sel.size:
-                cand_f, cand_m = f_new[sel], m_new[sel]
-                if feas[i]:
-                    ok = cand_f & (cand_m < merit[i] - 1e-12)
-                else:
-                    ok = cand_f | (cand_m < merit[i] - 1e-12)
-                if ok.any():
-                    # prefer feasible points, then the best merit
-                    score = np.where(cand_f, cand_m, np.inf) if (cand_f & ok).any() else cand_m
-                    score = np.where(ok, score, np.inf)
-                    k = sel[int(np.argmin(score))]
-                    centres[i] = u_eval[k]
-                    feas[i], merit[i] = f_new[k], m_new[k]
-                    improved = True
-            steps[i] = steps[i] * 1.5 if improved else steps[i] / 2
+    n_rand = 0 if search.slow else d
+    options = search.options
+    search.options = replace(options, screen=False)
+    try:
+        polls = 0
+        while search._left() > 0 and not search._out_of_time() and (max_polls is None or polls < max_polls):
+            polls += 1
+            active = np.flatnonzero(step > MIN_STEP)
+            if not active.size:
+                break
+            rand = rng.normal(size=(len(active), n_rand, d))
+            rand /= np.maximum(np.linalg.norm(rand, axis=2, keepdims=True), 1e-12)
+            base = np.broadcast_to(np.vstack([eye, -eye]), (len(active), 2 * d, d))
+            moves = np.concatenate([base, rand], axis=1) * step[active, None, None]
+            pts = x[active, None, :] + moves
+            # segment from the best feasible point to an infeasible iterate
+            seg_ok = (~np.isnan(xf[active, 0])) & (np.maximum(c[active], 0).max(axis=1) > 0)
+            t = np.asarray(SEGMENT)[None, :, None]
+            seg = np.where(seg_ok[:, None, None], xf[active, None, :] + t * (x[active, None, :] - xf[active, None, :]),
+                           np.nan)
+            pts = np.clip(np.concatenate([pts, seg], axis=1), 0.0, 1.0)
+            P = pts.shape[1]
+            owner = np.repeat(np.arange(len(active)), P)
+            flat = pts.reshape(-1, d)
+            real = ~np.isnan(flat[:, 0])
+            flat, owner = flat[real], owner[real]
+            n = search.fit(len(flat))
+            if n <= 0:
+                break
+            flat, owner = flat[:n], owner[:n]
+            out = search.evaluate_u(flat, "front")
+            search.state["polish_rounds"] += 1
+            improved = np.zeros(len(active), bool)
+            if not out.empty:
+                owner = owner[search.last_keep[:n]] if len(search.last_keep) == n else owner
+                ue = out[search.ucols].to_numpy(float)
+                ce = constraint_matrix(out, search.requirements)
+                Wo = W[active[owner]]
+                ge = chebyshev(scal(search, out), Wo) if scal.any_feasible else np.zeros(len(out))
+                pe = al_merit(ge, ce, lam[active[owner]], mu[active[owner]])
+                fe = out["feasible"].to_numpy(bool)
+                # best merit per owner, and best feasible scalarisation per owner (vectorised)
+                for arr, target in ((pe, "phi"), (np.where(fe, ge, np.inf), "gf")):
+                    order = np.lexsort((arr, owner))
+                    first = np.r_[True, owner[order][1:] != owner[order][:-1]]
+                    best_rows = order[first]
+                    who = owner[best_rows]
+                    i = active[who]
+                    if target == "phi":
+                        better = arr[best_rows] < phi[i] - 1e-12
+                        sel, rows = i[better], best_rows[better]
+                        x[sel], phi[sel], g[sel], c[sel] = ue[rows], pe[rows], ge[rows], ce[rows]
+                        improved[who[better]] = True
+                    else:
+                        better = arr[best_rows] < gf[i] - 1e-12
+                        sel, rows = i[better], best_rows[better]
+                        xf[sel], gf[sel] = ue[rows], ge[rows]
+            step[active] = np.where(improved, np.minimum(step[active] * 1.5, MAX_STEP), step[active] / 2)
+            # outer iteration of the augmented Lagrangian where the inner search converged
+            done = (step < tol) & (outer < MAX_OUTER) & (step > 0)
+            if done.any():
+                j = np.flatnonzero(done)
+                cj = np.where(np.isfinite(c[j]), c[j], 0.0)
+                lam[j] = np.maximum(0.0, lam[j] + mu[j, None] * cj)
+                viol = np.maximum(cj, 0).max(axis=1)
+                mu[j] = np.where(viol > 0.25 * viol_prev[j], mu[j] * 5.0, mu[j])
+                viol_prev[j] = viol
+                outer[j] += 1
+                tol[j] = np.maximum(INITIAL_STEP * 0.1 ** (outer[j] + 1), MIN_STEP)
+                step[j] = np.where(outer[j] < MAX_OUTER, np.maximum(10 * tol[j], 4 * MIN_STEP), step[j])
+                phi[j] = al_merit(g[j], c[j], lam[j], mu[j])
+    finally:
+        search.options = options

@@ -59,7 +59,7 @@ from math import factorial
 import numpy as np
 
 from ..lti import batch_roots
-from .time import batched_expm
+from .time import batched_expm, hermite_crest
 
 HORIZON_DECAYS = 20.0     # horizon = this / decay rate: the IAE tail beyond it is ~e^-20 (2e-9) relative
 DEGREE = 11              # P: polynomial degree of the delayed signal on each step
@@ -319,17 +319,7 @@ def _crest(y, d, sub):
     i1 = idx[:-1] + (idx[-1] + 1,)
     a0, a1 = y[idx], y[i1]
     d0, d1 = d[idx] * sub, d[i1] * sub
-    c3 = 2 * a0 + d0 - 2 * a1 + d1
-    c2 = -3 * a0 - 2 * d0 + 3 * a1 - d1
-    qa, qb, qc = 3 * c3, 2 * c2, d0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        disc = np.sqrt(np.maximum(qb * qb - 4 * qa * qc, 0.0))
-        q = -0.5 * (qb + np.copysign(disc, qb))
-        r1, r2 = q / qa, qc / q
-        t = np.where((r1 > 0) & (r1 < 1), r1, r2)
-        t = np.where(np.abs(qa) < 1e-300, -qc / qb, t)
-    t = np.clip(np.nan_to_num(t, nan=0.5), 0.0, 1.0)
-    val = ((c3 * t + c2) * t + d0) * t + a0
+    t, val = hermite_crest(a0, a1, d0, d1)
     best[idx] = np.maximum(best[idx], val)
     loc[idx] = t
     return best, loc

@@ -269,6 +269,14 @@ def interval_max(t, y, dy):
         return best
     h = t[i, j + 1] - t[i, j]
     y0, y1, d0, d1 = y[i, j], y[i, j + 1], dy[i, j] * h, dy[i, j + 1] * h
+    crest = hermite_crest(y0, y1, d0, d1)[1]
+    best[i, j] = np.maximum(best[i, j], crest)
+    return best
+
+
+def hermite_crest(y0, y1, d0, d1):
+    """(tau, value) of the crest of the cubic Hermite interpolant on [0, 1] with end values
+    y0, y1 and end slopes d0, d1 (slopes already scaled by the interval length)."""
     c3 = 2 * y0 + d0 - 2 * y1 + d1
     c2 = -3 * y0 - 2 * d0 + 3 * y1 - d1
     qa, qb, qc = 3 * c3, 2 * c2, d0
@@ -280,9 +288,7 @@ def interval_max(t, y, dy):
         tau = np.where((r1 > 0) & (r1 < 1), r1, r2)
         tau = np.where(np.abs(qa) < 1e-300, -qc / qb, tau)
     tau = np.clip(np.nan_to_num(tau, nan=0.5), 0.0, 1.0)
-    crest = ((c3 * tau + c2) * tau + d0) * tau + y0
-    best[i, j] = np.maximum(best[i, j], crest)
-    return best
+    return tau, ((c3 * tau + c2) * tau + d0) * tau + y0
 
 
 def _crossing_time(t, y, dy, k, level, iters: int = 40):

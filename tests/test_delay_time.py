@@ -103,11 +103,27 @@ def pade_decay(pn, pd, theta, cn, cd, order=10):
     return float(-np.roots(char).real.max())
 
 
-def synth_pieces(pn, pd, theta, cn, cd):
+def pade_roots(pn, pd, theta, cn, cd, order=10):
+    from synth.lti import pade
+    qn, qd = pade(theta, order)
+    char = np.polyadd(np.polymul(np.polymul(pd, qd), cd), np.polymul(np.polymul(pn, qn), cn))
+    return np.roots(char)
+
+
+def synth_pieces(pn, pd, theta, cn, cd, tail=False):
+    """synth's responses; with ``tail`` the Padé roots start the residue tail after the head."""
     decay = pade_decay(pn, pd, theta, cn, cd)
+    starts = pade_roots(pn, pd, theta, cn, cd)[None, :] if tail else None
     r = delay_step_responses(np.asarray(pn, float), np.asarray(pd, float), np.atleast_2d(cn),
-                             np.atleast_2d(cd), theta, np.array([decay]))
+                             np.atleast_2d(cd), theta, np.array([decay]), starts=starts)
     return r, decay
+
+
+def values_at(r, ts, o, row=0):
+    """synth's piecewise polynomial of response ``o`` at times ts (inside its steps)."""
+    k = np.searchsorted(r.t[row], ts + 1e-9 * r.h[row, 0], side="right") - 1   # a grid point: the step after it
+    sig = (ts - r.t[row, k]) / r.h[row, k]
+    return np.array([np.polyval(r.coef[row, kk, o][::-1], s) for kk, s in zip(k, sig)])
 
 
 LOOPS = {
@@ -136,12 +152,7 @@ def test_responses_match_method_of_steps(name):
     load = DDELoop(pn, pd, theta, cn, cd, 0.0, 1.0, horizon)
     # compare at points strictly inside the steps (no jump ambiguity) over the horizon
     ts = np.linspace(0.013 * theta, horizon * 0.999, 157)
-    k = np.floor(ts / r.h[0]).astype(int)
-    sig = ts / r.h[0] - k
-    c = r.coef[0]
-    def ev(o):
-        return np.array([np.polyval(c[kk, o][::-1], s) for kk, s in zip(k, sig)])
-    yr, yd, yu = ev(0), ev(1), ev(2)
+    yr, yd, yu = (values_at(r, ts, o) for o in range(3))
     oy = np.array([ref.y(t) for t in ts])
     od = np.array([load.y(t) for t in ts])
     ou = np.array([ref.u(t) for t in ts])
@@ -188,11 +199,7 @@ def test_fopdt_p_control_closed_form(K, tau, theta, kc):
     a = K * kc
     r, _ = synth_pieces([K], [tau, 1.0], theta, [kc], [1.0])
     ts = np.linspace(0, 3 * theta, 301)[1:-1]
-    k = np.floor(ts / r.h[0] + 1e-12).astype(int)
-    sig = ts / r.h[0] - k
-    y = np.array([np.polyval(r.coef[0, kk, 0][::-1], s) for kk, s in zip(k, sig)])
-    yd = np.array([np.polyval(r.coef[0, kk, 1][::-1], s) for kk, s in zip(k, sig)])
-    u = np.array([np.polyval(r.coef[0, kk, 2][::-1], s) for kk, s in zip(k, sig)])
+    y, yd, u = (values_at(r, ts, o) for o in range(3))
     t1, t2 = ts - theta, ts - 2 * theta
     y2 = a * (1 - np.exp(-theta / tau))
     exact = np.where(ts < theta, 0.0, np.where(ts < 2 * theta, a * (1 - np.exp(-t1 / tau)),
@@ -257,3 +264,51 @@ def test_batch_of_mixed_controllers_equals_one_at_a_time():
         one = delay_time_metrics(pn, pd, cn[i:i + 1], cd[i:i + 1], theta, decay[i:i + 1], 0.02)
         for key, v in one.items():
             assert allm[key][i] == pytest.approx(v[0], rel=1e-12, abs=1e-300) or (np.isinf(v[0]) and np.isinf(allm[key][i])), key
+
+
+# ------------------------------------------------------------------ residue tail
+# A PI with a slow zero on e^-0.5s/(s+1) (invented): a slow closed-loop root near -0.02 sets a
+# horizon of ~1,000 s, far past the method of steps' head of 128 dead times (64 s).
+SLOW = ([1.0], [1.0, 1.0], 0.5, [0.6, 0.6 * 0.05], [1.0, 0.0])
+
+
+def test_residue_tail_takes_over_and_matches_the_oracle():
+    pn, pd, theta, cn, cd = SLOW
+    r, decay = synth_pieces(pn, pd, theta, cn, cd, tail=True)
+    assert r.t[0, -1] >= 19.9 / decay                   # covers the whole horizon
+    assert r.h[0].max() > 10 * r.h[0].min()             # the tail's steps grew
+    head_end = r.t[0][np.argmax(r.h[0] != r.h[0, 0])]
+    assert head_end < 100.0                             # the tail took over after the head
+    horizon = head_end + 60.0                           # oracle across the switch and 60 s beyond
+    ref = DDELoop(pn, pd, theta, cn, cd, 1.0, 0.0, horizon)
+    load = DDELoop(pn, pd, theta, cn, cd, 0.0, 1.0, horizon)
+    ts = np.linspace(0.5 * head_end, horizon * 0.999, 211)
+    for o, f in ((0, ref.y), (1, load.y), (2, ref.u)):
+        theirs = np.array([f(t) for t in ts])
+        scale = max(np.abs(theirs).max(), 1e-3)
+        np.testing.assert_allclose(values_at(r, ts, o), theirs, rtol=0, atol=1e-8 * scale)
+
+
+def test_residue_tail_keeps_the_integral_and_the_metrics():
+    # IE = 1/ki over the whole horizon (Astrom & Hagglund 2006, value from memory) with the tail;
+    # every metric as from the method of steps alone (checked against the oracle above)
+    pn, pd, theta, cn, cd = SLOW
+    r, decay = synth_pieces(pn, pd, theta, cn, cd, tail=True)
+    assert delay_integral(r, 1)[0] == pytest.approx(cd[0] / cn[-1], rel=1e-7)
+    starts = pade_roots(pn, pd, theta, cn, cd)[None, :]
+    args = (pn, pd, np.atleast_2d(cn), np.atleast_2d(cd), theta, np.array([decay]), 0.02)
+    with_tail, steps_only = delay_time_metrics(*args, starts=starts), delay_time_metrics(*args)
+    for key, v in steps_only.items():
+        assert with_tail[key][0] == pytest.approx(v[0], rel=1e-8, abs=1e-12), key
+
+
+def test_residue_tail_refused_when_a_root_is_missing():
+    # without the slow root among the starting points the expansion cannot match the head's
+    # last dead time: the method of steps must run to the horizon instead
+    pn, pd, theta, cn, cd = SLOW
+    decay = pade_decay(pn, pd, theta, cn, cd)
+    roots = pade_roots(pn, pd, theta, cn, cd)
+    starts = roots[np.argsort(roots.real)][None, :-1]   # drop the rightmost (the slow root)
+    r = delay_step_responses(np.asarray(pn, float), np.asarray(pd, float), np.atleast_2d(cn),
+                             np.atleast_2d(cd), theta, np.array([decay]), starts=starts)
+    assert np.all(r.h[0] == r.h[0, 0])

@@ -172,7 +172,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
             dl_ = decay_loop[idx]
             horizon_decay = np.where(np.isfinite(dl_) & (dl_ > 0), np.fmin(dl_, d), d)
             tm = delay_time.delay_time_metrics(plant.num, plant.den, cnum[idx], cden[idx], plant.delay,
-                                               horizon_decay, options.settling_band)
+                                               horizon_decay, options.settling_band, starts=poles[idx])
         else:
             rpi = rp if np.ndim(rp.num) == 1 else type(rp)(rp.num[idx], rp.den[idx])
             tm = _time_block(rpi, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
@@ -294,6 +294,7 @@ def step_responses(plant: TransferFunction, cnum: np.ndarray, cden: np.ndarray,
         raise ValueError("step responses are defined for internally stable loops only")
     with threadpool_limits(limits=1, user_api="blas"):
         if plant.delay:
-            return delay_time.delay_step_responses(plant.num, plant.den, cnum, cden, plant.delay, decay)
+            return delay_time.delay_step_responses(plant.num, plant.den, cnum, cden, plant.delay, decay,
+                                                   starts=poles)
         nums = [batch_conv(cnum, rp.num), batch_conv(cden, rp.num), batch_conv(cnum, rp.den)]
         return time.simulate(char, nums, _pole_scale(char), decay, poles)

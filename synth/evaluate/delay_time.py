@@ -42,6 +42,18 @@ by (number of steps) x (cut-off) x (loop gain), below 1e-9 relative in practice,
 and the tests check the responses against an independent solve_ivp solution of the
 delay equation to 1e-7.
 
+Residue tail. Slow loops (a lag zero near a pole, a slow integral) need 20/decay seconds
+of response, which at h = theta/m can be millions of steps. After HEAD_STEPS steps (at
+least HEAD_DELAYS dead times) every input is constant and the response is the residue
+expansion y(t) = y(inf) + sum_k r_k e^(s_k t) over the roots s_k of the quasi-polynomial
+(Bellman & Cooke 1963, ch. 6); synth takes the roots found by Newton from the Padé roots
+and the residues r_k = F(s_k)/(s_k Delta'(s_k)). The expansion truncated to these roots is
+used only where it matches the method of steps on the head's whole last dead time to
+TAIL_TOL of each response's peak (a missed root shows there, and the row then runs the
+method of steps to the horizon). The tail's steps keep h |s_k| <= RHO for every root whose
+term is still above ALIVE_TOL of the peak, so they grow as the fast terms die out; its
+polynomials are the exact Taylor coefficients of the expansion at each step's start.
+
 Metrics use the same definitions as synth.evaluate.time (grouped_time_metrics keys).
 Each interval's response is a polynomial known to rounding, so peaks (Newton on the
 derivative), threshold crossings (bisection) and integrals (antiderivative; sign
@@ -58,7 +70,7 @@ from math import factorial
 
 import numpy as np
 
-from ..lti import batch_roots
+from ..lti import batch_conv, batch_polyval, batch_roots
 from .time import batched_expm, hermite_crest
 
 HORIZON_DECAYS = 20.0     # horizon = this / decay rate: the IAE tail beyond it is ~e^-20 (2e-9) relative
@@ -70,6 +82,11 @@ MAX_INTERVALS = 1 << 14  # cap per candidate; beyond it the horizon is cut (sett
 TRUNCATION_TOL = 1e-11   # largest accepted cut-off estimate (relative to the signal's peak)
 PEAK_INTERVALS = 3       # sub-intervals with the highest crests refined by Newton
 MAX_REFINE = 3           # times the step may be halved for rows failing TRUNCATION_TOL
+HEAD_STEPS = 128         # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
+HEAD_DELAYS = 8
+TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
+ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
+TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
 
 _FACT = np.array([float(factorial(i)) for i in range(DEGREE + 3)])
 
@@ -81,7 +98,8 @@ class DelayResponses:
     ``t``, ``y``, ``dy``, ``final`` as in synth.evaluate.time.Responses (y/dy (N, K+1, 3):
     reference->y, load->y, reference->u, right limits; the last sample is the left
     limit at the horizon). ``coef`` (N, K, 3, DEGREE+1) holds each step's polynomial in
-    local time sigma in [0, 1] (power basis); ``h`` (N,) the step in seconds.
+    local time sigma in [0, 1] (power basis); ``h`` (N, K) each step's length in seconds
+    (the method of steps' theta/m, then the residue tail's growing steps; 0 where padded).
     """
     t: np.ndarray
     y: np.ndarray
@@ -237,16 +255,13 @@ def finals(pnum, pden, cnum, cden):
         return np.stack([np0 * nc0 / delta, np0 * dc0 / delta, nc0 * dp0 / delta], axis=1)
 
 
-def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray):
-    """Piecewise-polynomial responses of N stable loops, grouped by grid.
-
-    Returns (coef list per row, h (N,), m (N,), truncation (N,)); coef[i] is (K_i, 3, P+1).
-    """
-    pnum, pden = np.atleast_1d(np.asarray(pnum, float)), np.atleast_1d(np.asarray(pden, float))
-    cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
+def _march(pnum, pden, cnum, cden, theta, m, K_time):
+    """Method of steps for N rows over ``K_time`` dead-time-relative lengths: row i runs
+    ceil(K_time[i] * m[i]) steps of theta/m[i] (capped at MAX_INTERVALS); rows whose cut-off
+    estimate exceeds TRUNCATION_TOL are rerun with twice as many steps per dead time.
+    Returns (coef list (K_i, 3, P+1), h (N,), m (N,), truncation (N,))."""
     N = cnum.shape[0]
-    m = _steps_per_delay(pden, cden, theta)
-    horizon = np.maximum(HORIZON_DECAYS / np.maximum(decay, 1e-300), 4 * theta)
+    m = m.copy()
     deg = cden.shape[1] - 1 - np.argmax(cden != 0, axis=1)
     coefs: list = [None] * N
     hs, trunc = np.zeros(N), np.full(N, np.inf)
@@ -254,7 +269,7 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray):
     for attempt in range(MAX_REFINE + 1):
         if todo.size == 0:
             break
-        K = np.minimum(np.ceil(horizon[todo] * m[todo] / theta), MAX_INTERVALS).astype(int)
+        K = np.minimum(np.ceil(K_time[todo] * m[todo]), MAX_INTERVALS).astype(int)
         key = np.stack([m[todo], np.ceil(np.log2(K)).astype(int), deg[todo]], axis=1)
         keys, inv = np.unique(key, axis=0, return_inverse=True)
         for g in range(keys.shape[0]):
@@ -274,6 +289,161 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray):
             m[bad] *= 2
         todo = bad
     return coefs, hs, m, trunc
+
+
+@dataclass
+class Pieces:
+    """Piecewise-polynomial responses of N loops: row i has steps starting at t0[i] (K_i,)
+    of lengths h[i] (K_i,), with coef[i] (K_i, 3, P+1) in local time sigma in [0, 1]."""
+    coef: list
+    h: list
+    t0: list
+    m: np.ndarray              # steps per dead time of the method of steps
+    truncation: np.ndarray     # largest cut-off estimate, relative to the signal's peak
+    tail: np.ndarray           # True where the residue tail took over after the head
+
+
+def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
+              starts: np.ndarray | None = None) -> Pieces:
+    """Piecewise-polynomial responses of N stable loops over 20 decays of their slowest mode.
+
+    The method of steps runs for HEAD_DELAYS dead times at least (HEAD_STEPS steps); where
+    the horizon is longer and ``starts`` (e.g. the Padé closed-loop poles) are given, the
+    rest is the residue expansion over the loop roots found by Newton (:func:`_tail`), kept
+    only where it matches the head's last dead time to TAIL_TOL; elsewhere the method of
+    steps runs to the horizon (capped at MAX_INTERVALS steps)."""
+    pnum, pden = np.atleast_1d(np.asarray(pnum, float)), np.atleast_1d(np.asarray(pden, float))
+    cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
+    N = cnum.shape[0]
+    m0 = _steps_per_delay(pden, cden, theta)
+    horizon = np.maximum(HORIZON_DECAYS / np.maximum(decay, 1e-300), 4 * theta)
+    full = horizon / theta                                    # horizon in dead times
+    head = np.maximum(np.ceil(HEAD_STEPS / m0), HEAD_DELAYS)
+    use_tail = (full > head) if starts is not None else np.zeros(N, bool)
+    coefs, hs, m, trunc = _march(pnum, pden, cnum, cden, theta, m0, np.where(use_tail, head, full))
+    h_list = [np.full(c.shape[0], hs[i]) for i, c in enumerate(coefs)]
+    t_list = [np.arange(c.shape[0]) * hs[i] for i, c in enumerate(coefs)]
+    tail_ok = np.zeros(N, bool)
+    idx = np.flatnonzero(use_tail)
+    if idx.size:
+        ok, tc, th, tt = _tail(pnum, pden, cnum[idx], cden[idx], theta, np.asarray(starts)[idx],
+                               [coefs[i] for i in idx], m[idx], hs[idx], horizon[idx])
+        for j, i in enumerate(idx):
+            if ok[j]:
+                coefs[i] = np.concatenate([coefs[i], tc[j]])
+                h_list[i] = np.concatenate([h_list[i], th[j]])
+                t_list[i] = np.concatenate([t_list[i], tt[j]])
+        tail_ok[idx] = ok
+        redo = idx[~ok]
+        if redo.size:      # no trustworthy tail: the method of steps to the horizon
+            c2, h2, m2, tr2 = _march(pnum, pden, cnum[redo], cden[redo], theta, m0[redo], full[redo])
+            for j, i in enumerate(redo):
+                coefs[i], h_list[i], t_list[i] = c2[j], np.full(c2[j].shape[0], h2[j]), np.arange(c2[j].shape[0]) * h2[j]
+            m[redo], trunc[redo] = m2, tr2
+    return Pieces(coefs, h_list, t_list, m, trunc, tail_ok)
+
+
+def _residues(pnum, pden, cnum, cden, theta, roots):
+    """Residues (N, 3, R) of the three step responses' transforms F(s)/(s Delta(s)) at the
+    loop roots (simple roots assumed): reference->y Np Nc e^(-theta s), load->y Np Dc
+    e^(-theta s), reference->u Nc Dp."""
+    from .delay import quasi_value, split      # local: delay imports nothing from here
+    a, b = split(pnum, pden, cnum, cden)
+    s = np.where(np.isnan(roots), 0.0, roots)
+    _, dd = quasi_value(a, b, theta, s)
+    e = np.exp(-theta * s)
+    nums = (batch_polyval(b, s) * e, batch_polyval(batch_conv(cden, pnum[None, :]), s) * e,
+            batch_polyval(batch_conv(cnum, pden[None, :]), s))
+    with np.errstate(all="ignore"):
+        res = np.stack([f / (s * dd) for f in nums], axis=1)
+    return np.where(np.isnan(roots)[:, None, :], 0.0, res)
+
+
+def _tail(pnum, pden, cnum, cden, theta, starts, head, m, h, horizon):
+    """Residue expansion of the responses after the head: y(t) = y(inf) + sum_k r_k e^(s_k t)
+    over the loop roots s_k (Newton on Delta from ``starts``). Past the head every input is
+    constant, so the difference between the true response and this finite sum solves the
+    homogeneous loop equation: it is checked on the head's whole last dead time (every
+    sub-sample of the three responses, relative to the head's peak) and the tail is used
+    only where it stays below TAIL_TOL there; a stable loop then keeps it of that order.
+
+    The tail's steps shrink the roots' exponents like the head's (h |s_k| <= RHO for every
+    root whose term is still above ALIVE_TOL of the peak) and grow as fast terms die out.
+    Returns (ok (N,), coef list, h list, t0 list) for the tail steps."""
+    from .delay import newton_roots, split
+    N = cnum.shape[0]
+    a, b = split(pnum, pden, cnum, cden)
+    roots = newton_roots(a, b, theta, starts)
+    res = _residues(pnum, pden, cnum, cden, theta, roots)          # (N, 3, R)
+    fin = finals(pnum, pden, cnum, cden)                            # (N, 3)
+    s = np.where(np.isnan(roots), 0.0, roots)
+    Kh = np.array([c.shape[0] for c in head])
+    T = Kh * h
+    # head's last dead time, every sub-sample, against the expansion
+    mm = int(m.max())
+    last = np.stack([np.pad(c[-min(mi, c.shape[0]):], ((mm - min(mi, c.shape[0]), 0), (0, 0), (0, 0)))
+                     for c, mi in zip(head, m)])                    # (N, mm, 3, P+1)
+    kk = np.arange(mm)[None, :] - mm                                # step offsets from the end
+    tt = T[:, None, None] + (kk[:, :, None] + _SIG[None, None, :]) * h[:, None, None]   # (N, mm, S+1)
+    hv = last @ _V0.T                                               # (N, mm, 3, S+1)
+    with np.errstate(all="ignore"):
+        ex = np.exp(s[:, None, None, :] * tt[..., None])            # (N, mm, S+1, R)
+        tv = fin[:, None, :, None] + np.einsum("nor,nkjr->nkoj", res, ex).real
+    valid = (kk >= -m[:, None])[:, :, None, None]
+    peak3 = np.stack([np.abs(c[..., 0]).max(axis=0) for c in head])                    # (N, 3)
+    peak = peak3.max(axis=1)
+    err = np.where(valid, np.abs(hv - tv), 0.0).max(axis=(1, 3))                       # (N, 3)
+    ok = np.all(err <= TAIL_TOL * np.maximum(peak3, 1e-12 * peak[:, None]), axis=1)
+    ok &= np.isfinite(err).all(axis=1) & np.all(np.isfinite(res), axis=(1, 2)) & (peak > 0)
+    # the tail grid, segment by segment for all live rows at once
+    amp = np.abs(res).max(axis=1) / np.maximum(peak3.max(axis=1), 1e-300)[:, None]     # (N, R)
+    t = T.astype(float).copy()
+    seg_rows, seg_t, seg_h, seg_n, seg_alive = [], [], [], [], []
+    total = np.zeros(N, int)
+    live = np.flatnonzero(ok)
+    while live.size:
+        with np.errstate(all="ignore"):
+            alive = (amp[live] * np.exp(s[live].real * t[live, None]) > ALIVE_TOL) & ~np.isnan(roots[live])
+        fastest = np.where(alive, np.abs(s[live]), 0.0).max(axis=1)
+        count = np.maximum(TAIL_STEPS, total[live] // 4)          # segments grow: few passes
+        H = np.where(fastest > 0, RHO / np.maximum(fastest, 1e-300), (horizon[live] - t[live]) / count)
+        H = np.maximum(H, 1e-300)
+        count = np.minimum(count, np.maximum(np.ceil((horizon[live] - t[live]) / H), 1)).astype(int)
+        seg_rows.append(live)
+        seg_t.append(t[live])
+        seg_h.append(H)
+        seg_n.append(count)
+        seg_alive.append(alive)
+        total[live] += count
+        t[live] += count * H
+        live = live[(t[live] < horizon[live]) & (total[live] < MAX_INTERVALS)]
+    if not seg_rows:
+        return ok, [None] * N, [None] * N, [None] * N
+    # one entry per tail step: (row, start, length, live roots), ordered by row then time
+    n_s = np.concatenate(seg_n)
+    rows_e = np.repeat(np.concatenate(seg_rows), n_s)
+    h_e = np.repeat(np.concatenate(seg_h), n_s)
+    first = np.repeat(np.cumsum(n_s) - n_s, n_s)
+    t_e = np.repeat(np.concatenate(seg_t), n_s) + h_e * (np.arange(n_s.sum()) - first)
+    al_e = np.repeat(np.concatenate(seg_alive), n_s, axis=0)
+    order = np.lexsort((t_e, rows_e))
+    rows_e, h_e, t_e, al_e = rows_e[order], h_e[order], t_e[order], al_e[order]
+    se = s[rows_e]                                                  # (E, R)
+    P = DEGREE
+    with np.errstate(all="ignore"):
+        z = np.where(al_e, np.exp(se * t_e[:, None]), 0.0)          # (E, R)
+        sh = se * h_e[:, None]
+        coef = np.empty((rows_e.size, 3, P + 1))
+        re_ = res[rows_e]                                           # (E, 3, R)
+        for i in range(P + 1):                                      # Taylor coefficient i: sum r (s h)^i / i! e^(s t0)
+            coef[..., i] = np.einsum("eor,er->eo", re_, z).real / _FACT[i]
+            z = z * sh
+    coef[..., 0] += fin[rows_e]
+    cuts = np.searchsorted(rows_e, np.arange(N + 1))
+    cl = [coef[cuts[i]:cuts[i + 1]] for i in range(N)]
+    hl = [h_e[cuts[i]:cuts[i + 1]] for i in range(N)]
+    tl = [t_e[cuts[i]:cuts[i + 1]] for i in range(N)]
+    return ok, cl, hl, tl
 
 
 # ------------------------------------------------------------------ polynomial helpers
@@ -328,9 +498,10 @@ def _crest(y, d, sub):
 class _Piecewise:
     """One response of N loops as piecewise polynomials on a common number of steps K."""
 
-    def __init__(self, coef: np.ndarray, h: np.ndarray, valid: np.ndarray):
+    def __init__(self, coef: np.ndarray, h: np.ndarray, t0: np.ndarray, valid: np.ndarray):
         self.c = coef                                   # (N, K, P+1)
-        self.h = h                                      # (N,)
+        self.h = h                                      # (N, K) step lengths, s
+        self.t0 = t0                                    # (N, K) step starts, s
         self.valid = valid                              # (N, K) step inside the row's horizon
         self.dc = _deriv(coef)
         self.v = coef @ _V0.T                           # (N, K, S+1)
@@ -340,6 +511,11 @@ class _Piecewise:
     def at(self, k, s):
         rows = np.arange(self.c.shape[0])
         return _horner(self.c[rows, k], s)
+
+    def time(self, k, s):
+        """Time (s) of local point s in step k, per row."""
+        rows = np.arange(self.c.shape[0])
+        return self.t0[rows, k] + s * self.h[rows, k]
 
     def crests(self, sign, offset=None):
         """Cubic crests of sign*(y - offset) per sub-interval, flattened to (N, K*S); sign (N,)
@@ -359,11 +535,13 @@ class _Piecewise:
         if sign.ndim == 0:            # one sign for every row: the cached arrays themselves
             val, loc = self._up if sign > 0 else self._dn
             if offset is not None:
-                val = val - offset[:, None] if sign > 0 else val + offset[:, None]
+                with np.errstate(invalid="ignore"):        # -inf (steps past the horizon) - inf
+                    val = val - offset[:, None] if sign > 0 else val + offset[:, None]
             return val, loc
         sign = sign[:, None]
         off = 0.0 if offset is None else offset[:, None]
-        val = np.where(sign > 0, self._up[0] - off, self._dn[0] + off)
+        with np.errstate(invalid="ignore"):
+            val = np.where(sign > 0, self._up[0] - off, self._dn[0] + off)
         loc = np.where(sign > 0, self._up[1], self._dn[1])
         return val, loc
 
@@ -407,7 +585,7 @@ class _Piecewise:
     def integrals(self):
         """Exact integral of y over every sub-interval, (N, K, S), in y units x seconds."""
         F = _antideriv(self.c) @ _V2.T
-        return np.diff(F, axis=-1) * self.h[:, None, None] * self.valid[..., None]
+        return np.diff(F, axis=-1) * self.h[:, :, None] * self.valid[..., None]
 
     def abs_integral(self):
         """Integral of |y|: exact where y keeps its sign in a sub-interval (crest test); where
@@ -434,7 +612,7 @@ class _Piecewise:
                 pts += [r, w]
             F = [_horner(Fc, p) for p in pts]
             part = sum(np.abs(F[i + 1] - F[i]) for i in range(len(F) - 1))
-            total = total + np.bincount(n_i, part * self.h[n_i], minlength=N)
+            total = total + np.bincount(n_i, part * self.h[n_i, k_i], minlength=N)
         return total
 
 
@@ -463,7 +641,7 @@ def _last_exit(pw: _Piecewise, final, band, K_rows):
     e_end = np.abs(pw.at(k, hi) - final)
     s = pw.bisect(k, lo, np.full(N, 1.0) * hi, lambda v: np.abs(v - final) - band)
     s = np.where(e_end > band, hi, s)              # a jump at the step's end leaves the band there
-    t = (k + s) * pw.h
+    t = pw.time(k, s)
     at_end = (k >= K_rows - 1) & (js == SUBSAMPLES - 1) & (e_end > band)
     return np.where(~any_out, 0.0, np.where(at_end, np.inf, t))
 
@@ -483,24 +661,31 @@ def _first_reach(pw: _Piecewise, level, sign):
     start_ok = sign * pw.at(k, lo) >= level
     s = pw.bisect(k, lo, hi, lambda v: sign * v - level)
     s = np.where(start_ok, lo, s)
-    return np.where(above.any(axis=1), (k + s) * pw.h, np.inf)
+    return np.where(above.any(axis=1), pw.time(k, s), np.inf)
 
 
-def _pad_group(coefs, idx):
-    K = max(coefs[i].shape[0] for i in idx)
-    c = np.zeros((len(idx), K) + coefs[idx[0]].shape[1:])
-    valid = np.zeros((len(idx), K), bool)
-    Ks = np.zeros(len(idx), int)
+def _pad_group(pieces: Pieces, idx):
+    """Rows ``idx`` of ``pieces`` padded to a common number of steps: coef (n, K, 3, P+1),
+    h and t0 (n, K) (padded steps: zero length at the row's end), valid (n, K), K_i (n,)."""
+    K = max(pieces.coef[i].shape[0] for i in idx)
+    n = len(idx)
+    c = np.zeros((n, K) + pieces.coef[idx[0]].shape[1:])
+    h, t0 = np.zeros((n, K)), np.zeros((n, K))
+    valid = np.zeros((n, K), bool)
+    Ks = np.zeros(n, int)
     for j, i in enumerate(idx):
-        c[j, :coefs[i].shape[0]] = coefs[i]
-        valid[j, :coefs[i].shape[0]] = True
-        Ks[j] = coefs[i].shape[0]
-    return c, valid, Ks
+        k = pieces.coef[i].shape[0]
+        c[j, :k], h[j, :k], t0[j, :k] = pieces.coef[i], pieces.h[i], pieces.t0[i]
+        t0[j, k:] = pieces.t0[i][-1] + pieces.h[i][-1]
+        valid[j, :k] = True
+        Ks[j] = k
+    return c, h, t0, valid, Ks
 
 
-def metrics_from_pieces(coef, valid, Ks, h, final, band) -> dict[str, np.ndarray]:
-    """The grouped_time_metrics keys from piecewise responses (N, K, 3, P+1)."""
-    pr, pd_, pu = (_Piecewise(coef[:, :, o], h, valid) for o in range(3))
+def metrics_from_pieces(coef, h, t0, valid, Ks, final, band) -> dict[str, np.ndarray]:
+    """The grouped_time_metrics keys from piecewise responses (N, K, 3, P+1) on steps of
+    lengths h starting at t0 (N, K)."""
+    pr, pd_, pu = (_Piecewise(coef[:, :, o], h, t0, valid) for o in range(3))
     yf = final[:, 0]
     sg = np.where(yf < 0, -1.0, 1.0)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -528,48 +713,51 @@ def metrics_from_pieces(coef, valid, Ks, h, final, band) -> dict[str, np.ndarray
 
 
 def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
-                       band: float) -> dict[str, np.ndarray]:
+                       band: float, starts: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Time metrics (keys of synth.evaluate.time.grouped_time_metrics) of N stable loops
-    with dead time ``theta`` > 0, from the delay equation (see the module docstring)."""
+    with dead time ``theta`` > 0, from the delay equation (see the module docstring);
+    ``starts`` (N, R): starting points for the loop roots of the residue tail."""
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
     N = cnum.shape[0]
-    coefs, h, m, _ = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float))
+    pieces = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float), starts)
     final = finals(pnum, pden, cnum, cden)
     out: dict[str, np.ndarray] = {}
-    Klen = np.array([c.shape[0] for c in coefs])
+    Klen = np.array([c.shape[0] for c in pieces.coef])
     bucket = np.ceil(np.log2(Klen)).astype(int)
     for b in np.unique(bucket):
         idx = np.flatnonzero(bucket == b)
-        c, valid, Ks = _pad_group(coefs, idx)
-        for key, v in metrics_from_pieces(c, valid, Ks, h[idx], final[idx], band).items():
+        c, h, t0, valid, Ks = _pad_group(pieces, idx)
+        for key, v in metrics_from_pieces(c, h, t0, valid, Ks, final[idx], band).items():
             out.setdefault(key, np.full(N, np.nan))[idx] = v
     return out
 
 
-def delay_step_responses(pnum, pden, cnum, cden, theta: float, decay: np.ndarray) -> DelayResponses:
+def delay_step_responses(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
+                         starts: np.ndarray | None = None) -> DelayResponses:
     """Sampled responses (reference->y, load->y, reference->u) at every step of the grid the
     metrics are computed on, for plots; rows padded with their last value to a common length."""
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
-    coefs, h, m, trunc = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float))
+    pieces = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float), starts)
     N = cnum.shape[0]
-    c, valid, Ks = _pad_group(coefs, list(range(N)))
+    c, h, t0, valid, Ks = _pad_group(pieces, list(range(N)))
     K = c.shape[1]
-    y = np.empty((N, K + 1, 3))
-    dy = np.empty((N, K + 1, 3))
-    y[:, :K] = c[..., 0]
-    dy[:, :K] = c[..., 1] / h[:, None, None]
     rows = np.arange(N)
     last = Ks - 1
+    hs = np.where(valid, h, 1.0)
+    y = np.empty((N, K + 1, 3))
+    dy = np.zeros((N, K + 1, 3))
+    y[:, :K] = c[..., 0]
+    dy[:, :K] = c[..., 1] / hs[:, :, None]
     y[rows, Ks] = c[rows, last].sum(axis=-1)
-    dy[rows, Ks] = (c[rows, last] * np.arange(DEGREE + 1)).sum(axis=-1) / h[:, None]
-    t = np.arange(K + 1)[None, :] * h[:, None]
-    for i in range(N):                          # pad shorter rows with their end value
-        y[i, Ks[i] + 1:] = y[i, Ks[i]]
-        dy[i, Ks[i] + 1:] = 0.0
-    return DelayResponses(t, y, dy, finals(pnum, pden, cnum, cden), c, h, m, trunc)
+    dy[rows, Ks] = (c[rows, last] * np.arange(DEGREE + 1)).sum(axis=-1) / hs[rows, last][:, None]
+    t = np.concatenate([t0, t0[:, -1:] + h[:, -1:]], axis=1)
+    pad = np.arange(K + 1)[None, :] > Ks[:, None]          # shorter rows: their end value
+    y = np.where(pad[..., None], y[rows, Ks][:, None, :], y)
+    dy = np.where(pad[..., None], 0.0, dy)
+    return DelayResponses(t, y, dy, finals(pnum, pden, cnum, cden), c, h, pieces.m, pieces.truncation)
 
 
 def delay_integral(r: DelayResponses, out: int) -> np.ndarray:
     """Signed integral of response ``out`` over the horizon, exact per step (antiderivative at
     sigma = 1; padded steps are zero polynomials)."""
-    return (_antideriv(r.coef[:, :, out]).sum(axis=-1) * r.h[:, None]).sum(axis=1)
+    return (_antideriv(r.coef[:, :, out]).sum(axis=-1) * r.h).sum(axis=1)

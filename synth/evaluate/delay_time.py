@@ -82,11 +82,17 @@ MAX_INTERVALS = 1 << 14  # cap per candidate; beyond it the horizon is cut (sett
 TRUNCATION_TOL = 1e-11   # largest accepted cut-off estimate (relative to the signal's peak)
 PEAK_INTERVALS = 3       # sub-intervals with the highest crests refined by Newton
 MAX_REFINE = 3           # times the step may be halved for rows failing TRUNCATION_TOL
+FAST_THETA = 64.0        # a stable open-loop pole with |p| theta above this gets graded steps (see step_pattern)
+MAX_GRADED = 400         # graded steps per dead time at most
+CLEAN_DECAYS = 32.0      # a fast mode this many time constants past its excitation counts as decayed
+GRADED_MU = 4.0          # |pole| h at most on graded steps (no rounding blow-up through M^i below it)
 HEAD_STEPS = 128         # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
 HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
+TAIL_RETRIES = 2         # times the head is made 4x longer when the expansion does not match it
+CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
 
 _FACT = np.array([float(factorial(i)) for i in range(DEGREE + 3)])
 
@@ -185,65 +191,195 @@ def _taylor_maps(M, rows, count):
 
 
 # ------------------------------------------------------------------ simulation
-def _simulate_group(pnum, pden, cnum, cden, theta, m, K):
-    """Piecewise-polynomial responses of one group (common m and K). Returns
-    (coef (N, K, 3, P+1) power basis, truncation (N,), h).
+def _simulate_group(pnum, pden, cnum, cden, hd, G, L, K):
+    """Piecewise-polynomial responses of one group (common step pattern shape G, L and K).
 
-    Batch first; per dead time (m steps) the delayed inputs are known, so the inputs'
-    contribution Gamma a_k and the v coefficients of the whole period are each one
-    batched product; only X_(k+1) = Phi X_k + (Gamma a)_k runs step by step."""
+    Every dead time is cut into the same L steps: G graded ones of lengths hd[:, :G], then
+    L - G of length hd[:, G]; step k has the length of position k mod L, so the delayed
+    input of a step is exactly the v polynomial of the step one dead time earlier.
+    Returns (coef (N, K, 3, P+1) power basis, truncation (N,), step lengths (N, K)).
+
+    Batch first; per dead time the delayed inputs are known, so the inputs' contribution
+    Gamma a_k and the v coefficients of the whole period are each one batched product;
+    only X_(k+1) = Phi X_k + (Gamma a)_k runs step by step."""
     N = cnum.shape[0]
-    h = np.full(N, theta / m)
-    M, rows, n = loop_matrices(pnum, pden, cnum, cden, h)
+    D = G + 1
+    M, rows, n = loop_matrices(pnum, pden, np.repeat(cnum, D, 0), np.repeat(cden, D, 0), hd[:, :D].ravel())
     P = DEGREE
     q = P + 1
-    E = batched_expm(M)
-    Phi, Gam = E[:, :n, :n], E[:, :n, n:]
-    R = _taylor_maps(M, rows, P + 3)            # (N, 3, P+3, n+P+1)
-    Rv = np.ascontiguousarray(R[:, 2, :q])       # v's coefficients (Taylor basis)
-    # Z[:, :, k, c] = [X_k; a_k] of case c (0: reference step, 1: load step)
-    Z = np.zeros((N, n + q, K + 1, 2))
-    Z[:, n - 2, 0, 0] = 1.0                     # r = 1
-    Z[:, n - 1, 0, 1] = 1.0                     # d = 1
-    V = np.zeros((N, q, K, 2))
-    x = Z[:, :n, 0]
-    for k0 in range(0, K, m):
-        k1 = min(k0 + m, K)
-        L = k1 - k0
-        if k0 >= m:
-            Z[:, n:, k0:k1] = V[:, :, k0 - m:k1 - m]
-            GA = (Gam @ V[:, :, k0 - m:k1 - m].reshape(N, q, 2 * L)).reshape(N, n, L, 2)
-            for j in range(L):
-                x = Phi @ x + GA[:, :, j]
-                Z[:, :n, k0 + j + 1] = x
+    d = n + q
+    E = batched_expm(M).reshape(N, D, d, d)
+    R = _taylor_maps(M, rows, P + 3).reshape(N, D, 3, P + 3, d)    # rows @ M^i
+    # the companion states of a step of length h are x_i / h^(i+1) of the physical ones
+    # (local time sigma = t / h): carry physical states so that steps of different lengths
+    # meet in one coordinate system (diagonal similarity, exact up to rounding)
+    npl = _trim(np.atleast_2d(pden)).shape[1] - 1
+    nc = n - npl - 2
+    expo = np.concatenate([np.arange(1, npl + 1), np.arange(1, nc + 1), np.zeros(2 + q)])
+    S = hd[:, :D, None] ** expo[None, None, :]                       # (N, D, d): physical = S * companion
+    E = S[..., :, None] * E / S[..., None, :]
+    R = R / S[:, :, None, None, :]
+    if G:        # uniform steps of a graded pattern: Taylor maps without the decayed fast modes
+        fast = _FastModes(M.reshape(N, D, d, d)[:, G], S[:, G], rows.reshape(N, D, 3, d)[:, G] / S[:, G, None, :],
+                          hd[:, G], n)
+        if fast.any:
+            R[:, G] = fast.R
+    pos = np.minimum(np.arange(L), G)                               # distinct length of each position
+    Phi = np.ascontiguousarray(E[:, :, :n, :n][:, pos])             # (N, L, n, n)
+    Gam = np.ascontiguousarray(E[:, :, :n, n:][:, pos])             # (N, L, n, q)
+    Rv = np.ascontiguousarray(R[:, :, 2, :q][:, pos])               # (N, L, q, d): v's Taylor coefficients
+    # Z[:, k, :, c] = [X_k; a_k] of case c (0: reference step, 1: load step)
+    Z = np.zeros((N, K + 1, d, 2))
+    Z[:, 0, n - 2, 0] = 1.0                     # r = 1
+    Z[:, 0, n - 1, 1] = 1.0                     # d = 1
+    V = np.zeros((N, K, q, 2))
+    x = Z[:, 0, :n]
+    for k0 in range(0, K, L):
+        k1 = min(k0 + L, K)
+        Ls = k1 - k0
+        if k0 >= L:
+            Z[:, k0:k1, n:] = V[:, k0 - L:k1 - L]
+            GA = np.einsum("njab,njbc->njac", Gam[:, :Ls], V[:, k0 - L:k1 - L])
+            for j in range(Ls):
+                x = Phi[:, j] @ x + GA[:, j]
+                Z[:, k0 + j + 1, :n] = x
         else:
-            for j in range(L):
-                x = Phi @ x
-                Z[:, :n, k0 + j + 1] = x
-        V[:, :, k0:k1] = (Rv @ Z[:, :, k0:k1].reshape(N, n + q, 2 * L)).reshape(N, q, L, 2)
-    Zr = Z[:, :, :K, 0]
-    Zl = Z[:, :, :K, 1]
+            for j in range(Ls):
+                x = Phi[:, j] @ x
+                Z[:, k0 + j + 1, :n] = x
+        V[:, k0:k1] = np.einsum("njqd,njdc->njqc", Rv[:, :Ls], Z[:, k0:k1])
+    kpos = pos[np.arange(K) % L]                                    # distinct length of every step
     coef = np.empty((N, K, 3, q))
     tail = np.zeros(N)
     scale = np.zeros(N)
-    for o, (row, Zc) in enumerate(((0, Zr), (0, Zl), (1, Zr))):
-        full = (R[:, row] @ Zc).transpose(0, 2, 1) / _FACT[None, None, :]      # (N, K, P+3) power basis
-        coef[:, :, o] = full[..., :q]
-        tail = np.maximum(tail, np.max(np.abs(full[..., q]) + np.abs(full[..., q + 1]), axis=1))
-        scale = np.maximum(scale, np.max(np.abs(full[..., 0]), axis=1))
-    vt = (R[:, 2, q:] @ Zl) / _FACT[None, q:, None]          # v's cut-off terms, load case
-    tail = np.maximum(tail, np.max(np.abs(vt).sum(axis=1), axis=1))
-    return coef, tail / np.maximum(scale, 1e-300), h
+    for dd in range(D):
+        ks = np.flatnonzero(kpos == dd)
+        if ks.size == 0:
+            continue
+        Zs = Z[:, ks]                                               # (N, k, d, 2)
+        for o, (row, c) in enumerate(((0, 0), (0, 1), (1, 0))):
+            full = np.einsum("nid,nkd->nki", R[:, dd, row], Zs[..., c]) / _FACT[None, None, :]   # power basis
+            coef[:, ks, o] = full[..., :q]
+            tail = np.maximum(tail, np.max(np.abs(full[..., q]) + np.abs(full[..., q + 1]), axis=1))
+            scale = np.maximum(scale, np.max(np.abs(full[..., 0]), axis=1))
+        vt = np.einsum("nid,nkd->nki", R[:, dd, 2, q:], Zs[..., 1]) / _FACT[None, None, q:]   # v's cut-off, load case
+        tail = np.maximum(tail, np.max(np.abs(vt).sum(axis=2), axis=1))
+    return coef, tail / np.maximum(scale, 1e-300), hd[np.arange(N)[:, None], kpos[None, :]]
 
 
-def _steps_per_delay(pden, cden, theta):
-    """m = steps per dead time: h |pole| <= RHO for the open-loop poles, rounded up to a power of 2."""
+class _FastModes:
+    """Taylor coefficients on the uniform steps of a graded pattern without rounding blow-up.
+
+    A fast open-loop pole p on a step with |p| h >> 1 enters the i-th Taylor coefficient
+    as (p h)^i / i!: computed through M^i, rounding noise in its modal coordinate would be
+    amplified by up to ~1e10 every dead time. step_pattern ends the graded steps only once
+    every such mode has decayed by e^(-CLEAN_DECAYS) since the last multiple of the dead
+    time, so on the uniform steps its modal coordinate xi is the polynomial particular
+    solution of xi' = mu xi + beta s for the step's input s(sigma) = sum a_j sigma^j/j!
+    (mu = p h, beta = (w . b) h): xi^(i)(0) = -beta sum_j a_(i+j) / mu^(j+1). The outputs'
+    Taylor coefficients are then those of the slow part (the state projected off the fast
+    modes, the input column projected likewise: M^i then never meets mu) plus c v_f xi^(i).
+    All of it is one linear map of [X; a] per output (``R``, (N, 3, q+2, d), in place of
+    rows @ M^i). The propagation X_(k+1) = Phi X_k + Gamma a_k is untouched (exact)."""
+
+    def __init__(self, M, S, rows_phys, h, n):
+        N, d = M.shape[0], M.shape[-1]
+        q = d - n
+        Mp = S[:, :, None] * M / S[:, None, :]                        # physical coordinates
+        A = Mp[:, :n, :n] / h[:, None, None]
+        lam, Vr = np.linalg.eig(A)
+        laml, Wl = np.linalg.eig(np.swapaxes(A, 1, 2))
+        fastm = np.abs(lam) * h[:, None] > RHO
+        F = int(fastm.sum(axis=1).max(initial=0))
+        self.any = F > 0
+        if not self.any:
+            return
+        order = np.argsort(-np.abs(lam), axis=1)[:, :F]
+        lf = np.take_along_axis(lam, order, axis=1)                   # (N, F)
+        vf = np.take_along_axis(Vr, order[:, None, :], axis=2)        # (N, n, F)
+        match = np.argmin(np.abs(laml[:, None, :] - lf[:, :, None]), axis=2)
+        wf = np.take_along_axis(np.swapaxes(Wl, 1, 2), match[:, :, None], axis=1)   # (N, F, n)
+        with np.errstate(all="ignore"):
+            wf = wf / np.einsum("nfd,ndf->nf", wf, vf)[:, :, None]
+        use = (np.abs(lf) * h[:, None] > RHO) & np.isfinite(wf).all(axis=2)
+        wf = np.where(use[:, :, None], wf, 0.0)
+        vf = np.where(use[:, None, :], vf, 0.0)
+        self.Pf = np.einsum("ndf,nfe->nde", vf, wf).real              # spectral projector on the fast modes
+        Ms = Mp.copy()              # slow part: fast eigenvalues and input directions projected out
+        Ms[:, :n, :n] = Mp[:, :n, :n] - Mp[:, :n, :n] @ self.Pf
+        Ms[:, :n, n:] = Mp[:, :n, n:] - self.Pf @ Mp[:, :n, n:]
+        Rs = _taylor_maps(Ms, rows_phys, q + 2)                       # (N, 3, q+2, d): slow part
+        mu = np.where(use, lf * h[:, None], 1.0)
+        beta = np.einsum("nfd,nd->nf", wf, Mp[:, :n, n])              # (N, F): (w . b) h
+        # xi^(i) = -beta sum_j a_(i+j) / mu^(j+1): T[i, k] = mu^-(k-i+1) for k >= i (0 beyond the degree)
+        i, k = np.arange(q + 2)[:, None], np.arange(q)[None, :]
+        with np.errstate(all="ignore"):
+            T = np.where(k >= i, (1.0 / mu)[..., None, None] ** np.maximum(k - i + 1, 0), 0.0)   # (N, F, q+2, q)
+        T = np.where(use[..., None, None], T, 0.0)
+        cv = np.einsum("nrd,ndf->nrf", rows_phys[:, :, :n], vf)      # (N, 3, F)
+        fmap = -np.einsum("nrf,nf,nfik->nrik", cv, beta, T).real     # (N, 3, q+2, q)
+        # one linear map of [X; a] per output, like rows @ M^i: slow part of X, input part, forced fast part
+        self.R = np.concatenate([Rs[..., :n] - Rs[..., :n] @ self.Pf[:, None], Rs[..., n:] + fmap], axis=-1)
+
+
+def _open_loop_poles(pden, cden):
+    """Open-loop poles of plant and controller, (N, n) complex (0 where absent): the exponents
+    of the loop's solution on each step."""
     pp = np.roots(np.trim_zeros(np.asarray(pden, float), "f")) if np.count_nonzero(pden) > 1 else np.zeros(0)
-    pmax = np.max(np.abs(pp)) if pp.size else 0.0
-    cp = np.abs(batch_roots(cden))
-    cmax = np.nanmax(np.where(np.isnan(cp), 0.0, cp), axis=1) if cp.shape[1] else np.zeros(cden.shape[0])
-    need = np.maximum(MIN_STEPS, np.ceil(theta * np.maximum(pmax, cmax) / RHO))
-    return (2 ** np.ceil(np.log2(need))).astype(int)
+    cp = batch_roots(cden)
+    cp = np.where(np.isnan(cp), 0.0, cp)
+    return np.concatenate([np.broadcast_to(pp.astype(complex), (cden.shape[0], pp.size)), cp], axis=1)
+
+
+def step_pattern(pden, cden, theta, level):
+    """The steps of one dead time, shared by every dead time: (hd (N, Dmax), G (N,), L (N,)).
+
+    Uniform rows: L = m steps of theta/m, m a power of 2 with h |pole| <= RHO for every
+    open-loop pole and at least MIN_STEPS (G = 0). A stable pole with |p| theta > FAST_THETA
+    (e.g. a derivative filter) would need many more steps, but only at the start of each
+    dead time, where the delayed input's jumps excite its mode: there the steps are graded,
+    growing so that e^(-|p| tau) (|p| h)^(P+1)/(P+1)! stays at the level of RHO^(P+1)/(P+1)!
+    (its transient has decayed by e^(-|p| tau) after tau) with |p| h <= GRADED_MU, until
+    every fast mode has decayed by e^(-CLEAN_DECAYS); the rest of the dead time is uniform
+    at the step the other poles need (:class:`_FastModes` keeps the fast modes out of its
+    Taylor maps). ``level`` halves every step that many times (rows whose cut-off estimate
+    failed)."""
+    N = cden.shape[0]
+    poles = _open_loop_poles(pden, cden)
+    lam = np.abs(poles)                                             # (N, n)
+    fast = (lam * theta > FAST_THETA) & (poles.real < 0)
+    scale = 2.0 ** np.asarray(level, float)
+    rho = RHO / scale
+    slow = np.where(fast, 0.0, lam).max(axis=1, initial=0.0)
+    m = np.maximum(MIN_STEPS, np.ceil(theta * slow / RHO))
+    m = (2 ** np.ceil(np.log2(m))).astype(int) * scale.astype(int)
+    graded = fast.any(axis=1)
+    H = theta / m
+    steps = [np.zeros(N)]
+    tau = np.zeros(N)
+    going = graded.copy()
+    for _ in range(MAX_GRADED):
+        if not going.any():
+            break
+        with np.errstate(over="ignore", divide="ignore"):
+            allowed = np.where(lam > 0, rho[:, None] * np.exp(np.minimum(lam * tau[:, None], 700.0) / (DEGREE + 1)) / lam, np.inf)
+        allowed = np.minimum(allowed, GRADED_MU / scale[:, None] / np.where(lam > 0, lam, 1.0))
+        h = np.minimum(allowed.min(axis=1), H)
+        decayed = np.all(~fast | (lam * tau[:, None] >= CLEAN_DECAYS), axis=1)
+        going &= ~decayed
+        h = np.where(going, h, 0.0)
+        steps.append(h)
+        tau += h
+    hs = np.stack(steps[1:], axis=1) if len(steps) > 1 else np.zeros((N, 0))
+    G = (hs > 0).sum(axis=1)
+    rest = theta - hs.sum(axis=1)
+    n_u = np.where(graded, np.ceil(rest / H - 1e-9), m).astype(int)
+    hu = np.where(graded, rest / np.maximum(n_u, 1), H)
+    width = int(G.max(initial=0)) + 1
+    hd = np.zeros((N, width))
+    hd[:, :width - 1] = hs[:, :width - 1]
+    hd[np.arange(N), G] = hu
+    return hd, G, G + n_u
 
 
 def finals(pnum, pden, cnum, cden):
@@ -255,40 +391,44 @@ def finals(pnum, pden, cnum, cden):
         return np.stack([np0 * nc0 / delta, np0 * dc0 / delta, nc0 * dp0 / delta], axis=1)
 
 
-def _march(pnum, pden, cnum, cden, theta, m, K_time):
-    """Method of steps for N rows over ``K_time`` dead-time-relative lengths: row i runs
-    ceil(K_time[i] * m[i]) steps of theta/m[i] (capped at MAX_INTERVALS); rows whose cut-off
-    estimate exceeds TRUNCATION_TOL are rerun with twice as many steps per dead time.
-    Returns (coef list (K_i, 3, P+1), h (N,), m (N,), truncation (N,))."""
+def _march(pnum, pden, cnum, cden, theta, periods):
+    """Method of steps for N rows over ``periods`` dead times each (at most MAX_INTERVALS
+    steps); rows whose cut-off estimate exceeds TRUNCATION_TOL are rerun with every step
+    halved. Returns (coef list (K_i, 3, P+1), step lengths list (K_i,), steps per dead time
+    (N,), truncation (N,))."""
     N = cnum.shape[0]
-    m = m.copy()
+    level = np.zeros(N, int)
     deg = cden.shape[1] - 1 - np.argmax(cden != 0, axis=1)
     coefs: list = [None] * N
-    hs, trunc = np.zeros(N), np.full(N, np.inf)
+    hs: list = [None] * N
+    per = np.zeros(N, int)
+    trunc = np.full(N, np.inf)
     todo = np.arange(N)
     for attempt in range(MAX_REFINE + 1):
         if todo.size == 0:
             break
-        K = np.minimum(np.ceil(K_time[todo] * m[todo]), MAX_INTERVALS).astype(int)
-        key = np.stack([m[todo], np.ceil(np.log2(K)).astype(int), deg[todo]], axis=1)
+        hd, G, L = step_pattern(pden, cden[todo], theta, level[todo])
+        K = np.minimum(np.ceil(periods[todo] * L), MAX_INTERVALS).astype(int)
+        key = np.stack([G, L, np.ceil(np.log2(K)).astype(int), deg[todo]], axis=1)
         keys, inv = np.unique(key, axis=0, return_inverse=True)
         for g in range(keys.shape[0]):
-            sel = todo[inv.ravel() == g]
-            Kg = int(K[inv.ravel() == g].max())
-            dg = int(keys[g, 2])
+            here = inv.ravel() == g
+            sel = todo[here]
+            Kg = int(K[here].max())
+            Gg, Lg, dg = int(keys[g, 0]), int(keys[g, 1]), int(keys[g, 3])
             cd = cden[sel][:, cden.shape[1] - 1 - dg:]
             cn = cnum[sel][:, -(dg + 1):] if cnum.shape[1] >= dg + 1 else cnum[sel]
             if np.any(cnum[sel][:, :max(cnum.shape[1] - dg - 1, 0)] != 0):
                 raise ValueError("improper controller: numerator degree above the denominator's")
-            c, tr, h = _simulate_group(pnum, pden, cn, cd, theta, int(keys[g, 0]), Kg)
+            c, tr, hk = _simulate_group(pnum, pden, cn, cd, hd[here][:, :Gg + 1], Gg, Lg, Kg)
             for j, i in enumerate(sel):
-                coefs[i] = c[j]
-            hs[sel], trunc[sel] = h, tr
+                coefs[i], hs[i] = c[j], hk[j]
+            trunc[sel], per[sel] = tr, Lg
         bad = todo[trunc[todo] > TRUNCATION_TOL]
         if attempt < MAX_REFINE:
-            m[bad] *= 2
+            level[bad] += 1
         todo = bad
-    return coefs, hs, m, trunc
+    return coefs, hs, per, trunc
 
 
 @dataclass
@@ -303,6 +443,10 @@ class Pieces:
     tail: np.ndarray           # True where the residue tail took over after the head
 
 
+def _starts_of(h: np.ndarray) -> np.ndarray:
+    return np.concatenate([[0.0], np.cumsum(h)[:-1]])
+
+
 def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
               starts: np.ndarray | None = None) -> Pieces:
     """Piecewise-polynomial responses of N stable loops over 20 decays of their slowest mode.
@@ -315,51 +459,61 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     pnum, pden = np.atleast_1d(np.asarray(pnum, float)), np.atleast_1d(np.asarray(pden, float))
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
     N = cnum.shape[0]
-    m0 = _steps_per_delay(pden, cden, theta)
+    _, _, L0 = step_pattern(pden, cden, theta, np.zeros(N, int))
     horizon = np.maximum(HORIZON_DECAYS / np.maximum(decay, 1e-300), 4 * theta)
     full = horizon / theta                                    # horizon in dead times
-    head = np.maximum(np.ceil(HEAD_STEPS / m0), HEAD_DELAYS)
+    head = np.maximum(np.ceil(HEAD_STEPS / L0), HEAD_DELAYS)
     use_tail = (full > head) if starts is not None else np.zeros(N, bool)
-    coefs, hs, m, trunc = _march(pnum, pden, cnum, cden, theta, m0, np.where(use_tail, head, full))
-    h_list = [np.full(c.shape[0], hs[i]) for i, c in enumerate(coefs)]
-    t_list = [np.arange(c.shape[0]) * hs[i] for i, c in enumerate(coefs)]
+    coefs, h_list, m, trunc = _march(pnum, pden, cnum, cden, theta, np.where(use_tail, head, full))
+    t_list = [_starts_of(h) for h in h_list]
     tail_ok = np.zeros(N, bool)
     idx = np.flatnonzero(use_tail)
-    if idx.size:
+    for attempt in range(TAIL_RETRIES + 1):
+        if idx.size == 0:
+            break
         ok, tc, th, tt = _tail(pnum, pden, cnum[idx], cden[idx], theta, np.asarray(starts)[idx],
-                               [coefs[i] for i in idx], m[idx], hs[idx], horizon[idx])
+                               [coefs[i] for i in idx], [h_list[i] for i in idx], m[idx], horizon[idx],
+                               chain=attempt > 0)
         for j, i in enumerate(idx):
             if ok[j]:
                 coefs[i] = np.concatenate([coefs[i], tc[j]])
                 h_list[i] = np.concatenate([h_list[i], th[j]])
                 t_list[i] = np.concatenate([t_list[i], tt[j]])
         tail_ok[idx] = ok
-        redo = idx[~ok]
-        if redo.size:      # no trustworthy tail: the method of steps to the horizon
-            c2, h2, m2, tr2 = _march(pnum, pden, cnum[redo], cden[redo], theta, m0[redo], full[redo])
-            for j, i in enumerate(redo):
-                coefs[i], h_list[i], t_list[i] = c2[j], np.full(c2[j].shape[0], h2[j]), np.arange(c2[j].shape[0]) * h2[j]
-            m[redo], trunc[redo] = m2, tr2
+        fail = idx[~ok]
+        head[fail] *= 2 if attempt == 0 else 4    # terms not in the expansion may still be alive: a longer head
+        last = attempt == TAIL_RETRIES
+        redo = fail[(head[fail] >= full[fail]) | last]
+        idx = fail[(head[fail] < full[fail]) & (not last)]
+        for rows, periods in ((redo, full), (idx, head)):   # no trustworthy tail yet: steps to the horizon / a longer head
+            if rows.size:
+                c2, h2, m2, tr2 = _march(pnum, pden, cnum[rows], cden[rows], theta, periods[rows])
+                for j, i in enumerate(rows):
+                    coefs[i], h_list[i], t_list[i] = c2[j], h2[j], _starts_of(h2[j])
+                m[rows], trunc[rows] = m2, tr2
     return Pieces(coefs, h_list, t_list, m, trunc, tail_ok)
 
 
 def _residues(pnum, pden, cnum, cden, theta, roots):
     """Residues (N, 3, R) of the three step responses' transforms F(s)/(s Delta(s)) at the
     loop roots (simple roots assumed): reference->y Np Nc e^(-theta s), load->y Np Dc
-    e^(-theta s), reference->u Nc Dp."""
-    from .delay import quasi_value, split      # local: delay imports nothing from here
+    e^(-theta s), reference->u Nc Dp. Far in the left half-plane e^(-theta s) overflows;
+    there it is taken from the root condition itself, e^(-theta s) = -A(s)/B(s)."""
+    from .delay import _horner2, split      # local: delay imports nothing from here
     a, b = split(pnum, pden, cnum, cden)
     s = np.where(np.isnan(roots), 0.0, roots)
-    _, dd = quasi_value(a, b, theta, s)
-    e = np.exp(-theta * s)
-    nums = (batch_polyval(b, s) * e, batch_polyval(batch_conv(cden, pnum[None, :]), s) * e,
-            batch_polyval(batch_conv(cnum, pden[None, :]), s))
     with np.errstate(all="ignore"):
+        av, ad = _horner2(a, s)
+        bv, bd = _horner2(b, s)
+        e = np.where(-theta * s.real > 30.0, -av / bv, np.exp(-theta * np.where(-theta * s.real > 30.0, 0.0, s)))
+        dd = ad + (bd - theta * bv) * e
+        nums = (bv * e, batch_polyval(batch_conv(cden, pnum[None, :]), s) * e,
+                batch_polyval(batch_conv(cnum, pden[None, :]), s))
         res = np.stack([f / (s * dd) for f in nums], axis=1)
     return np.where(np.isnan(roots)[:, None, :], 0.0, res)
 
 
-def _tail(pnum, pden, cnum, cden, theta, starts, head, m, h, horizon):
+def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain=False):
     """Residue expansion of the responses after the head: y(t) = y(inf) + sum_k r_k e^(s_k t)
     over the loop roots s_k (Newton on Delta from ``starts``). Past the head every input is
     constant, so the difference between the true response and this finite sum solves the
@@ -370,26 +524,30 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, m, h, horizon):
     The tail's steps shrink the roots' exponents like the head's (h |s_k| <= RHO for every
     root whose term is still above ALIVE_TOL of the peak) and grow as fast terms die out.
     Returns (ok (N,), coef list, h list, t0 list) for the tail steps."""
-    from .delay import newton_roots, split
+    from .delay import chain_starts, newton_roots, split
     N = cnum.shape[0]
     a, b = split(pnum, pden, cnum, cden)
+    if chain:      # a retry: the first roots of the chains too (slow chains when theta is long)
+        starts = np.concatenate([starts, chain_starts(a, b, theta, np.full(N, CHAIN_ROOTS * np.pi / theta),
+                                                      CHAIN_ROOTS)], axis=1)
     roots = newton_roots(a, b, theta, starts)
     res = _residues(pnum, pden, cnum, cden, theta, roots)          # (N, 3, R)
     fin = finals(pnum, pden, cnum, cden)                            # (N, 3)
     s = np.where(np.isnan(roots), 0.0, roots)
-    Kh = np.array([c.shape[0] for c in head])
-    T = Kh * h
+    T = np.array([hk.sum() for hk in head_h])
     # head's last dead time, every sub-sample, against the expansion
     mm = int(m.max())
-    last = np.stack([np.pad(c[-min(mi, c.shape[0]):], ((mm - min(mi, c.shape[0]), 0), (0, 0), (0, 0)))
-                     for c, mi in zip(head, m)])                    # (N, mm, 3, P+1)
+    take = [min(mi, c.shape[0]) for c, mi in zip(head, m)]
+    last = np.stack([np.pad(c[-k:], ((mm - k, 0), (0, 0), (0, 0))) for c, k in zip(head, take)])   # (N, mm, 3, P+1)
+    hl = np.stack([np.pad(hk[-k:], (mm - k, 0)) for hk, k in zip(head_h, take)])                    # (N, mm)
     kk = np.arange(mm)[None, :] - mm                                # step offsets from the end
-    tt = T[:, None, None] + (kk[:, :, None] + _SIG[None, None, :]) * h[:, None, None]   # (N, mm, S+1)
+    t_end = T[:, None] - np.cumsum(hl[:, ::-1], axis=1)[:, ::-1]     # each step's start
+    tt = t_end[:, :, None] + _SIG[None, None, :] * hl[:, :, None]   # (N, mm, S+1)
     hv = last @ _V0.T                                               # (N, mm, 3, S+1)
     with np.errstate(all="ignore"):
         ex = np.exp(s[:, None, None, :] * tt[..., None])            # (N, mm, S+1, R)
         tv = fin[:, None, :, None] + np.einsum("nor,nkjr->nkoj", res, ex).real
-    valid = (kk >= -m[:, None])[:, :, None, None]
+    valid = (kk >= -np.asarray(take)[:, None])[:, :, None, None]
     peak3 = np.stack([np.abs(c[..., 0]).max(axis=0) for c in head])                    # (N, 3)
     peak = peak3.max(axis=1)
     err = np.where(valid, np.abs(hv - tv), 0.0).max(axis=(1, 3))                       # (N, 3)

@@ -234,19 +234,26 @@ def _simulate_group(pnum, pden, cnum, cden, hd, G, L, K):
     Z[:, 0, n - 1, 1] = 1.0                     # d = 1
     V = np.zeros((N, K, q, 2))
     x = Z[:, 0, :n]
+    # within a dead time X_(j+1) = Phi_j X_j + (Gamma a)_j is an affine recursion whose matrices
+    # depend on the position only: its prefix products are computed once and each dead time
+    # is one inclusive scan (Hillis & Steele, CACM 29, 1986) in log2(L) batched products
+    pw, pref = _scan_powers(Phi)
     for k0 in range(0, K, L):
         k1 = min(k0 + L, K)
         Ls = k1 - k0
+        xs = np.einsum("njab,nbc->njac", pref[:, :Ls], x)            # the state's part: Phi_j ... Phi_0 X
         if k0 >= L:
             Z[:, k0:k1, n:] = V[:, k0 - L:k1 - L]
-            GA = np.einsum("njab,njbc->njac", Gam[:, :Ls], V[:, k0 - L:k1 - L])
-            for j in range(Ls):
-                x = Phi[:, j] @ x + GA[:, j]
-                Z[:, k0 + j + 1, :n] = x
-        else:
-            for j in range(Ls):
-                x = Phi[:, j] @ x
-                Z[:, k0 + j + 1, :n] = x
+            c = np.einsum("njab,njbc->njac", Gam[:, :Ls], V[:, k0 - L:k1 - L])
+            for dlt, P_ in pw:                                        # c_j <- c_j + Phi_j..Phi_(j-dlt+1) c_(j-dlt)
+                if dlt >= Ls:
+                    break
+                nxt = c.copy()
+                nxt[:, dlt:] += np.einsum("njab,njbc->njac", P_[:, dlt:Ls], c[:, :Ls - dlt])
+                c = nxt
+            xs = xs + c
+        Z[:, k0 + 1:k1 + 1, :n] = xs
+        x = xs[:, -1]
         V[:, k0:k1] = np.einsum("njqd,njdc->njqc", Rv[:, :Ls], Z[:, k0:k1])
     kpos = pos[np.arange(K) % L]                                    # distinct length of every step
     coef = np.empty((N, K, 3, q))
@@ -320,6 +327,28 @@ class _FastModes:
         fmap = -np.einsum("nrf,nf,nfik->nrik", cv, beta, T).real     # (N, 3, q+2, q)
         # one linear map of [X; a] per output, like rows @ M^i: slow part of X, input part, forced fast part
         self.R = np.concatenate([Rs[..., :n] - Rs[..., :n] @ self.Pf[:, None], Rs[..., n:] + fmap], axis=-1)
+
+
+def _scan_powers(Phi):
+    """Products of consecutive step matrices for the scan over one dead time: a list of
+    (dlt, P) with P[:, j] = Phi_j ... Phi_(j-dlt+1) (dlt = 1, 2, 4, ...; valid for j >= dlt - 1),
+    and the prefixes Phi_j ... Phi_0 (N, L, n, n)."""
+    L = Phi.shape[1]
+    pw = []
+    P_ = Phi
+    dlt = 1
+    pref = Phi.copy()
+    while dlt < L:
+        pw.append((dlt, P_))
+        nxt = pref.copy()
+        nxt[:, dlt:] = P_[:, dlt:] @ pref[:, :L - dlt]
+        pref = nxt
+        if 2 * dlt < L:
+            Q = P_.copy()
+            Q[:, dlt:] = P_[:, dlt:] @ P_[:, :L - dlt]
+            P_ = Q
+        dlt *= 2
+    return pw, pref
 
 
 def _open_loop_poles(pden, cden):

@@ -98,7 +98,7 @@ HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
-TAIL_RETRIES = 2         # times the head is made 4x longer when the expansion does not match it
+TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the expansion does not match it
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
 
 _FACT = np.array([float(factorial(i)) for i in range(DEGREE + 3)])
@@ -207,8 +207,8 @@ def _simulate_group(pnum, pden, cnum, cden, hd, G, L, K):
     Returns (coef (N, K, 3, P+1) power basis, truncation (N,), step lengths (N, K)).
 
     Batch first; per dead time the delayed inputs are known, so the inputs' contribution
-    Gamma a_k and the v coefficients of the whole period are each one batched product;
-    only X_(k+1) = Phi X_k + (Gamma a)_k runs step by step."""
+    Gamma a_k and the v coefficients of the whole period are each one batched product,
+    and X_(k+1) = Phi X_k + (Gamma a)_k over the period is one scan (:func:`_scan_powers`)."""
     N = cnum.shape[0]
     D = G + 1
     M, rows, n = loop_matrices(pnum, pden, np.repeat(cnum, D, 0), np.repeat(cden, D, 0), hd[:, :D].ravel())
@@ -297,8 +297,7 @@ class _FastModes:
     rows @ M^i). The propagation X_(k+1) = Phi X_k + Gamma a_k is untouched (exact)."""
 
     def __init__(self, M, S, rows_phys, h, n):
-        N, d = M.shape[0], M.shape[-1]
-        q = d - n
+        q = M.shape[-1] - n
         Mp = S[:, :, None] * M / S[:, None, :]                        # physical coordinates
         A = Mp[:, :n, :n] / h[:, None, None]
         lam, Vr = np.linalg.eig(A)
@@ -391,7 +390,7 @@ def step_pattern(pden, cden, theta, level):
     m = (2 ** np.ceil(np.log2(m))).astype(int) * scale.astype(int)
     graded = fast.any(axis=1)
     H = theta / m
-    steps = [np.zeros(N)]
+    steps = []
     tau = np.zeros(N)
     going = graded.copy()
     for _ in range(MAX_GRADED):
@@ -406,7 +405,7 @@ def step_pattern(pden, cden, theta, level):
         h = np.where(going, h, 0.0)
         steps.append(h)
         tau += h
-    hs = np.stack(steps[1:], axis=1) if len(steps) > 1 else np.zeros((N, 0))
+    hs = np.stack(steps, axis=1) if steps else np.zeros((N, 0))
     G = (hs > 0).sum(axis=1)
     rest = theta - hs.sum(axis=1)
     n_u = np.where(graded, np.ceil(rest / H - 1e-9), m).astype(int)
@@ -590,7 +589,7 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     ok = np.all(err <= TAIL_TOL * np.maximum(peak3, 1e-12 * peak[:, None]), axis=1)
     ok &= np.isfinite(err).all(axis=1) & np.all(np.isfinite(res), axis=(1, 2)) & (peak > 0)
     # the tail grid, segment by segment for all live rows at once
-    amp = np.abs(res).max(axis=1) / np.maximum(peak3.max(axis=1), 1e-300)[:, None]     # (N, R)
+    amp = np.abs(res).max(axis=1) / np.maximum(peak, 1e-300)[:, None]                  # (N, R)
     t = T.astype(float).copy()
     seg_rows, seg_t, seg_h, seg_n, seg_alive = [], [], [], [], []
     total = np.zeros(N, int)

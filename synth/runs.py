@@ -24,6 +24,7 @@ import numpy as np
 from . import __version__
 from .archive import ArchiveError, RunStore, default_run_dir
 from .lti import TransferFunction
+from .metric_names import METRICS
 from .spec import Spec, SpecError, load_spec
 
 SHOWN_STORED = 50          # rows whose certified records are stored when a search ends
@@ -269,8 +270,7 @@ def table_view(run: Run, n: int | None = None, sort: str | None = None, text: bo
         return TableView(meta["rows"], meta["feasible"], recs)
     df = None
     if n is None and meta is not None:     # every row: read only the columns a record shows
-        from .tables import RECORD_METRICS
-        df = _stored_ranked(run, columns=["id", *family_of(run).names, *RECORD_METRICS, sort])
+        df = _stored_ranked(run, columns=["id", *family_of(run).names, *METRICS, sort])
     if df is None:
         df = ranked(run)
     if sort is not None:

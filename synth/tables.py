@@ -18,6 +18,7 @@ import numpy as np
 
 from . import CAUTION
 from .describe import fmt_num
+from .metric_names import METRICS
 from .requirements import REQUIREMENTS, requirement_value
 from .runs import Run, TableView, conflicts, family_of
 
@@ -26,16 +27,6 @@ FALLOUT_LINES = 15
 SHORT = {"settling_time_s": "settling_s", "disturbance_peak": "load_peak", "control_peak": "u_peak",
          "disturbance_iae": "load_iae", "disturbance_settling_time_s": "load_settle_s", "overshoot_pct": "overshoot_%",
          "control_gain_peak": "noise_gain", "sensitivity_peak": "Ms", "complementary_peak": "Mt"}
-# the metric keys of a record (synth.evaluate.METRICS, without importing the evaluator)
-RECORD_METRICS = [
-    "internally_stable", "hidden_modes", "closed_loop_poles", "min_damping", "decay_rate",
-    "settling_time_s", "overshoot_pct", "rise_time_s", "steady_state_error",
-    "disturbance_peak", "disturbance_settling_time_s", "disturbance_steady_state", "disturbance_iae",
-    "control_peak", "gain_margin_db", "gain_margin_low_db", "phase_margin_deg", "delay_margin_s",
-    "crossover_rad_s", "sensitivity_peak", "complementary_peak", "disturbance_gain_peak",
-    "control_gain_peak", "bandwidth_rad_s", "position_constant", "velocity_constant",
-    "acceleration_constant", "ramp_error", "certified",
-]
 
 
 def _zp(run: Run, rows):
@@ -90,7 +81,7 @@ def records(run: Run, rows, details: bool = False) -> list[dict]:
         "knee": rows["knee"].astype(bool).tolist() if "knee" in rows else [False] * n}
     ctrl = [{"gain": g, "zeros": z, "poles": p}
             for g, z, p in zip(_column(gains), _roots(zeros), _roots(poles))]
-    for m in RECORD_METRICS:
+    for m in METRICS:
         if m == "closed_loop_poles":
             cols[m] = (_roots([np.asarray(v)[~np.isnan(v)] for v in rows[m]]) if m in rows else [None] * n)
         elif m in ("internally_stable", "certified"):
@@ -194,7 +185,7 @@ def records_json(run: Run, rows) -> list[str]:
              rep(', "knee": '), _json_column(knee),
              rep(', "controller": {"gain": '), _json_column(np.asarray(gains, float)),
              rep(', "zeros": '), _json_roots(zeros), rep(', "poles": '), _json_roots(poles), rep("}")]
-    for m in RECORD_METRICS:
+    for m in METRICS:
         parts.append(rep(f", {json.dumps(m)}: "))
         if m == "closed_loop_poles":
             parts.append(_json_roots([np.asarray(v)[~np.isnan(v)] for v in rows[m]]) if m in rows

@@ -17,20 +17,12 @@ import pandas as pd
 from threadpoolctl import threadpool_limits
 
 from ..lti import TransferFunction, batch_conv
+from ..metric_names import METRICS
 from ..requirements import REQUIREMENTS, requirement_value, slack
 from ..structures import Family
 from . import delay, delay_time, frequency, stability, time
 
 
-METRICS = [
-    "internally_stable", "hidden_modes", "closed_loop_poles", "min_damping", "decay_rate",
-    "settling_time_s", "overshoot_pct", "rise_time_s", "steady_state_error",
-    "disturbance_peak", "disturbance_settling_time_s", "disturbance_steady_state", "disturbance_iae",
-    "control_peak", "gain_margin_db", "gain_margin_low_db", "phase_margin_deg", "delay_margin_s",
-    "crossover_rad_s", "sensitivity_peak", "complementary_peak", "disturbance_gain_peak",
-    "control_gain_peak", "bandwidth_rad_s", "position_constant", "velocity_constant",
-    "acceleration_constant", "ramp_error", "certified",
-]
 EXTRA_FREQUENCIES = ("phase_margin_rad_s", "gain_margin_rad_s", "gain_margin_low_rad_s",
                      "sensitivity_peak_rad_s", "complementary_peak_rad_s")   # where margins/peaks occur
 SCREEN_KEYS = ("min_damping", "min_decay_rate")

@@ -159,8 +159,9 @@ def rhp_count(a: np.ndarray, b: np.ndarray, theta: float, delay_free_roots: np.n
 
 
 # ------------------------------------------------------------------ roots
-def _horner2(p: np.ndarray, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """p(s) and p'(s) in one Horner pass, rows of p at s (N, K)."""
+def polyval_and_derivative(p: np.ndarray, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """p(s) and p'(s) for rows of p (descending powers) at s (N, K), in one Horner pass:
+    what Newton on Delta and the residues of the dead-time step responses need."""
     v = np.zeros(s.shape, dtype=complex)
     d = np.zeros(s.shape, dtype=complex)
     for j in range(p.shape[1]):
@@ -172,8 +173,8 @@ def _horner2(p: np.ndarray, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def quasi_value(a, b, theta, s):
     """Delta(s) and Delta'(s) for rows of a, b at s (N, K)."""
     e = np.exp(-theta * s)
-    av, ad = _horner2(a, s)
-    bv, bd = _horner2(b, s)
+    av, ad = polyval_and_derivative(a, s)
+    bv, bd = polyval_and_derivative(b, s)
     return av + bv * e, ad + (bd - theta * bv) * e
 
 

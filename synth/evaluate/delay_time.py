@@ -534,12 +534,12 @@ def _residues(pnum, pden, cnum, cden, theta, roots):
     loop roots (simple roots assumed): reference->y Np Nc e^(-theta s), load->y Np Dc
     e^(-theta s), reference->u Nc Dp. Far in the left half-plane e^(-theta s) overflows;
     there it is taken from the root condition itself, e^(-theta s) = -A(s)/B(s)."""
-    from .delay import _horner2, split      # local: delay imports nothing from here
+    from .delay import polyval_and_derivative, split      # local: delay imports nothing from here
     a, b = split(pnum, pden, cnum, cden)
     s = np.where(np.isnan(roots), 0.0, roots)
     with np.errstate(all="ignore"):
-        av, ad = _horner2(a, s)
-        bv, bd = _horner2(b, s)
+        av, ad = polyval_and_derivative(a, s)
+        bv, bd = polyval_and_derivative(b, s)
         e = np.where(-theta * s.real > 30.0, -av / bv, np.exp(-theta * np.where(-theta * s.real > 30.0, 0.0, s)))
         dd = ad + (bd - theta * bv) * e
         nums = (bv * e, batch_polyval(batch_conv(cden, pnum[None, :]), s) * e,

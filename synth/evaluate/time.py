@@ -134,54 +134,46 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
 
     total = FIRST_SEGMENT + SEGMENT_SAMPLES * segs + 1
     M = SEGMENT_SAMPLES
-    pt = np.ascontiguousarray(phi.transpose(1, 2, 0))     # batch on the last axis
-    gt = np.ascontiguousarray(gam.T)
     X = np.zeros((total, order, n_c))
     T = np.zeros((total, n_c))
     x = np.zeros((order, n_c))
     tcur, h = np.zeros(n_c), h0.copy()
-    P = G = None
+    # a block of M steps at once: x_j = Phi^j x_0 + G_j, G_j = sum_{i<j} Phi^i Gamma, built by
+    # doubling (Phi^(k+j) = Phi^j Phi^k, G_(k+j) = Phi^j G_k + G_j); P[m] = Phi^(m+1), G[m] = G_(m+1)
+    P = np.empty((M, order, order, n_c))
+    G = np.empty((M, order, n_c))
+    P[0], G[0] = phi.transpose(1, 2, 0), gam.T           # batch on the last axis
+    k = 1
+    while k < M:
+        P[k:2 * k] = np.einsum("mijn,jkn->mikn", P[:k], P[k - 1])
+        G[k:2 * k] = np.einsum("mijn,jn->min", P[:k], G[k - 1]) + G[:k]
+        k *= 2
+    half = M // 2
     first_blocks = FIRST_SEGMENT // M
     for b in range(first_blocks + segs):
-        seg = max(0, b - first_blocks + 1)
-        d = flags[:, seg - 1] if seg > 0 and b >= first_blocks else np.zeros(n_c, bool)
-        if d.any():   # Phi(2h) = Phi^2, Gamma(2h) = Phi Gamma + Gamma, where the plan doubles
-            gt = np.where(d[None, :], (pt * gt[None]).sum(axis=1) + gt, gt)
-            pt = np.where(d[None, None, :], np.einsum("ijn,jkn->ikn", pt, pt), pt)
-            h = np.where(d, 2 * h, h)
-        if P is None or d.any():
-            # a block of M steps at once: x_j = Phi^j x_0 + G_j, G_j = sum_{i<j} Phi^i Gamma,
-            # built by doubling (Phi^(k+j) = Phi^j Phi^k, G_(k+j) = Phi^j G_k + G_j), and only
-            # for the candidates whose step changed
-            sel = np.arange(n_c) if P is None else np.flatnonzero(d)
-            if P is None:
-                P = np.empty((M, order, order, n_c))
-                G = np.empty((M, order, n_c))
-            Ps = np.empty((M, order, order, sel.size))
-            Gs = np.empty((M, order, sel.size))
-            Ps[0], Gs[0] = pt[..., sel], gt[:, sel]
-            k = 1
-            while k < M:
-                Ps[k:2 * k] = np.einsum("mijn,jkn->mikn", Ps[:k], Ps[k - 1])
-                Gs[k:2 * k] = np.einsum("mijn,jn->min", Ps[:k], Gs[k - 1]) + Gs[:k]
-                k *= 2
-            P[..., sel] = Ps
-            G[..., sel] = Gs
+        seg = b - first_blocks + 1
+        if seg > 0 and flags[:, seg - 1].any():
+            # where the plan doubles the step: Phi(2h)^j = Phi(h)^(2j) and G_j(2h) = G_2j(h) for
+            # j <= M/2 are already there; the second half follows from them by one product
+            sel = np.flatnonzero(flags[:, seg - 1])
+            Pd, Gd = P[1::2][..., sel], G[1::2][..., sel]
+            P[:half, ..., sel], G[:half, :, sel] = Pd, Gd
+            P[half:, ..., sel] = np.einsum("mijn,jkn->mikn", Pd, Pd[-1])
+            G[half:, :, sel] = np.einsum("mijn,jn->min", Pd, Gd[-1]) + Gd
+            h[sel] *= 2
         i0 = 1 + b * M
         X[i0:i0 + M] = np.einsum("mijn,jn->min", P, x) + G
         T[i0:i0 + M] = tcur + h * np.arange(1, M + 1)[:, None]
         x = X[i0 + M - 1]
         tcur = tcur + M * h
-    # outputs in the (K, n, N) layout: contiguous over candidates, no small-matrix products
-    CA = C @ A
-    y = np.empty((total, n_c, 3))
-    dy = np.empty((total, n_c, 3))
-    for o in range(3):
-        y[:, :, o] = np.einsum("kjn,jn->kn", X, C[:, o, :].T) + D[:, o]
-        dy[:, :, o] = np.einsum("kjn,jn->kn", X, CA[:, o, :].T) + C[:, o, 0]
-    X = X.transpose(2, 0, 1)                                   # (N, K, n)
-    return Responses(T.T / w0[:, None], y.transpose(1, 0, 2), dy.transpose(1, 0, 2) * w0[:, None, None],
-                     final, X, A, C, D, w0)
+    # outputs and their derivatives (y' = C x' + D u', x' = A x + e1) in one batched product
+    # (N, 6, K) planes, so that each output's samples are contiguous in time
+    planes = np.concatenate([C, C @ A], axis=1) @ X.transpose(2, 1, 0)
+    planes[:, :3] += D[:, :, None]
+    planes[:, 3:] += C[:, :, :1]
+    planes[:, 3:] *= w0[:, None, None]
+    return Responses(T.T / w0[:, None], planes[:, :3].transpose(0, 2, 1), planes[:, 3:].transpose(0, 2, 1),
+                     final, X.transpose(2, 0, 1), A, C, D, w0)
 
 
 def batched_expm(M: np.ndarray, degree: int = 14) -> np.ndarray:
@@ -227,21 +219,28 @@ def _outputs(X, A, C, D):
 def fine(r: Responses, k: np.ndarray, out: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exact sub-samples of output ``out`` inside interval [k, k+1] of each row.
 
-    Returns times (N, S+1) in seconds, values and derivatives, S = SUBSAMPLES.
+    ``k`` is (N,) or (N, q) (q intervals per row, refined in one batch). Returns times
+    (N, [q,] S+1) in seconds, values and derivatives, S = SUBSAMPLES.
     """
-    rows = np.arange(r.t.shape[0])
-    k = np.clip(k, 0, r.t.shape[1] - 2)
-    hs = (r.t[rows, k + 1] - r.t[rows, k]) * r.w0 / SUBSAMPLES       # scaled sub-step
-    phi, gam = _zoh(r.A, hs)
-    x = r.X[rows, k]
+    k = np.asarray(k)
+    multi = k.ndim == 2
+    n, q = r.t.shape[0], k.shape[1] if multi else 1
+    rows = np.repeat(np.arange(n), q)
+    k = np.clip(k.reshape(-1), 0, r.t.shape[1] - 2)
+    w0 = r.w0[rows]
+    hs = (r.t[rows, k + 1] - r.t[rows, k]) * w0 / SUBSAMPLES       # scaled sub-step
+    A = r.A[rows]
+    phi, gam = _zoh(A, hs)
+    x = r.X[rows, k][..., None]
     xs = [x]
     for _ in range(SUBSAMPLES):
-        x = np.einsum("nij,nj->ni", phi, x) + gam
+        x = phi @ x + gam[..., None]
         xs.append(x)
-    Xf = np.stack(xs, axis=1)
-    y, dy = _outputs(Xf, r.A, r.C[:, out:out + 1], r.D[:, out:out + 1])
-    tf = r.t[rows, k][:, None] + np.arange(SUBSAMPLES + 1)[None, :] * (hs / r.w0)[:, None]
-    return tf, y[..., 0], dy[..., 0] * r.w0[:, None]
+    Xf = np.concatenate(xs, axis=2).transpose(0, 2, 1)                # (Nq, S+1, n)
+    y, dy = _outputs(Xf, A, r.C[rows, out:out + 1], r.D[rows, out:out + 1])
+    tf = r.t[rows, k][:, None] + np.arange(SUBSAMPLES + 1)[None, :] * (hs / w0)[:, None]
+    shape = (n, q, SUBSAMPLES + 1) if multi else (n, SUBSAMPLES + 1)
+    return tf.reshape(shape), y[..., 0].reshape(shape), (dy[..., 0] * w0[:, None]).reshape(shape)
 
 
 # ----------------------------------------------------------- Hermite helpers
@@ -253,25 +252,6 @@ def _hermite(t0, t1, y0, y1, d0, d1, tau):
     h01 = -2 * tau ** 3 + 3 * tau ** 2
     h11 = tau ** 3 - tau ** 2
     return h00 * y0 + h10 * h * d0 + h01 * y1 + h11 * h * d1
-
-
-def interval_max(t, y, dy):
-    """Maximum of the cubic Hermite interpolant on each sample interval, (N, K-1).
-
-    From exact samples and derivatives: a crest between two samples exists where
-    the derivative falls from positive to negative, and there the cubic's
-    stationary point solves a quadratic. This finds crests the samples miss,
-    which would otherwise misplace a peak or a last exit from the settling band.
-    """
-    best = np.maximum(y[:, :-1], y[:, 1:])
-    i, j = np.nonzero((dy[:, :-1] > 0) & (dy[:, 1:] < 0))
-    if i.size == 0:
-        return best
-    h = t[i, j + 1] - t[i, j]
-    y0, y1, d0, d1 = y[i, j], y[i, j + 1], dy[i, j] * h, dy[i, j + 1] * h
-    crest = hermite_crest(y0, y1, d0, d1)[1]
-    best[i, j] = np.maximum(best[i, j], crest)
-    return best
 
 
 def hermite_crest(y0, y1, d0, d1):
@@ -289,6 +269,30 @@ def hermite_crest(y0, y1, d0, d1):
         tau = np.where(np.abs(qa) < 1e-300, -qc / qb, tau)
     tau = np.clip(np.nan_to_num(tau, nan=0.5), 0.0, 1.0)
     return tau, ((c3 * tau + c2) * tau + d0) * tau + y0
+
+
+def interval_extrema(t, y, dy):
+    """Crest and trough of the cubic Hermite interpolant on each sample interval,
+    (hi, lo), each (N, K-1).
+
+    From exact samples and derivatives: a crest (trough) between two samples exists
+    where the derivative changes sign from + to - (- to +), and there the cubic's
+    stationary point solves a quadratic. This finds extrema the samples miss, which
+    would otherwise misplace a peak or a last exit from the settling band. Computed
+    once per output and shared by the peak, rise and settling tests and the sign
+    test of the absolute integral.
+    """
+    y0, y1, d0, d1 = y[:, :-1], y[:, 1:], dy[:, :-1], dy[:, 1:]
+    hi, lo = np.maximum(y0, y1), np.minimum(y0, y1)
+    up = d0 > 0
+    i, j = np.nonzero((up & (d1 < 0)) | ((d0 < 0) & (d1 > 0)))     # a crest or a trough inside
+    if i.size:
+        h = t[i, j + 1] - t[i, j]
+        sg = np.where(up[i, j], 1.0, -1.0)                         # a trough is the crest of -y
+        v = sg * hermite_crest(sg * y0[i, j], sg * y1[i, j], sg * d0[i, j] * h, sg * d1[i, j] * h)[1]
+        hi[i, j] = np.where(sg > 0, np.maximum(hi[i, j], v), hi[i, j])
+        lo[i, j] = np.where(sg < 0, np.minimum(lo[i, j], v), lo[i, j])
+    return hi, lo
 
 
 def _crossing_time(t, y, dy, k, level, iters: int = 40):
@@ -325,23 +329,28 @@ def _cubic_max(t, v, dv):
 PEAK_INTERVALS = 3   # intervals with the highest cubic crests re-sampled exactly
 
 
-def refined_peak(r: Responses, out: int, sign: np.ndarray | None) -> np.ndarray:
+def refined_peak(r: Responses, out: int, sign: np.ndarray | None, ext=None) -> np.ndarray:
     """sup over t of sign*y_out(t), or of |y_out(t)| when ``sign`` is None.
 
     The few intervals whose cubic crests are highest are re-sampled exactly and
     refined (near-equal crests of a lightly damped mode cannot be told apart by the
     cubic alone); the result is never below the final value, approached as t -> inf.
+    ``ext`` is the output's (crest, trough) from interval_extrema, if already known.
     """
     y, dy = r.y[:, :, out], r.dy[:, :, out]
-    signs = (1.0, -1.0) if sign is None else (sign[:, None],)
-    crest = np.max([interval_max(r.t, s * y, s * dy) for s in signs], axis=0)
+    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
+    if sign is None:
+        crest, signs = np.maximum(hi, -lo), (1.0, -1.0)
+    else:
+        crest, signs = np.where(sign[:, None] > 0, hi, -lo), (sign[:, None],)
     m = min(PEAK_INTERVALS, crest.shape[1])
     top = np.argpartition(-crest, m - 1, axis=1)[:, :m]
     best = np.max([(s * y).max(axis=1) for s in signs], axis=0)
-    for j in range(m):
-        tf, yf, df = fine(r, top[:, j], out)
-        for s in signs:
-            best = np.maximum(best, _cubic_max(tf, s * yf, s * df))
+    n = y.shape[0]
+    tf, yf, df = (a.reshape(n * m, -1) for a in fine(r, top, out))   # all m intervals in one batch
+    for s in signs:
+        s = s if np.ndim(s) == 0 else np.repeat(s, m, axis=0)
+        best = np.maximum(best, _cubic_max(tf, s * yf, s * df).reshape(n, m).max(axis=1))
     final = np.abs(r.final[:, out]) if sign is None else r.final[:, out] * sign
     return np.maximum(best, final)
 
@@ -350,9 +359,12 @@ def refined_crossing(r: Responses, out: int, k: np.ndarray, level: np.ndarray, o
                      absolute: bool, last: bool) -> np.ndarray:
     """Time where e = y_out - offset (or |e| when ``absolute``) crosses ``level`` inside
     interval k: the first or last crossing among the exact sub-samples, refined by
-    Hermite bisection."""
-    tf, yf, df = fine(r, k, out)
-    ef = yf - offset[:, None]
+    Hermite bisection. ``k`` and ``level`` are (N,) or (N, q); ``offset`` is (N,)."""
+    k = np.asarray(k)
+    n, q = k.shape[0], 1 if k.ndim == 1 else k.shape[1]
+    tf, yf, df = (a.reshape(n * q, -1) for a in fine(r, k.reshape(n, q), out))
+    level = np.broadcast_to(level, k.shape).reshape(-1)
+    ef = yf - np.repeat(offset, q)[:, None]
     if absolute:
         df = np.sign(ef) * df
         ef = np.abs(ef)
@@ -360,15 +372,16 @@ def refined_crossing(r: Responses, out: int, k: np.ndarray, level: np.ndarray, o
     ch = s[:, :-1] * s[:, 1:] <= 0
     j = (SUBSAMPLES - 1 - np.argmax(ch[:, ::-1], axis=1)) if last else np.argmax(ch, axis=1)
     j = np.where(ch.any(axis=1), j, 0)
-    return _crossing_time(tf, ef, df, j, level)
+    return _crossing_time(tf, ef, df, j, level).reshape(k.shape)
 
 
-def _settling(r: Responses, out: int, band_abs: np.ndarray) -> np.ndarray:
+def _settling(r: Responses, out: int, band_abs: np.ndarray, ext=None) -> np.ndarray:
     """Last time |y - final| leaves the band; inf if still outside at the horizon."""
     y, dy = r.y[:, :, out], r.dy[:, :, out]
     final = r.final[:, out]
     e = y - final[:, None]
-    crest = np.maximum(interval_max(r.t, e, dy), interval_max(r.t, -e, -dy))
+    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
+    crest = np.maximum(hi - final[:, None], final[:, None] - lo)     # of |y - final|
     outside = crest > band_abs[:, None]
     any_out = outside.any(axis=1)
     last = outside.shape[1] - 1 - np.argmax(outside[:, ::-1], axis=1)
@@ -395,13 +408,12 @@ def exact_integral(r: Responses, out: int) -> np.ndarray:
     return interval_integrals(r, out).sum(axis=1)
 
 
-def abs_integral(r: Responses, out: int) -> np.ndarray:
+def abs_integral(r: Responses, out: int, ext=None) -> np.ndarray:
     """Integral of |y_out|: exact on every interval where y keeps its sign (cubic crest test),
     Simpson with Hermite midpoints on the few intervals where it changes sign."""
     y, dy = r.y[:, :, out], r.dy[:, :, out]
     ints = interval_integrals(r, out)
-    lo = -interval_max(r.t, -y, -dy)
-    hi = interval_max(r.t, y, dy)
+    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
     same = (lo >= 0) | (hi <= 0)
     h = np.diff(r.t, axis=1)
     ym = 0.5 * (y[:, :-1] + y[:, 1:]) + h * (dy[:, :-1] - dy[:, 1:]) / 8
@@ -412,27 +424,24 @@ def abs_integral(r: Responses, out: int) -> np.ndarray:
 def time_metrics(r: Responses, band: float) -> dict[str, np.ndarray]:
     """Step-response metrics from sampled responses (see the DESIGN definitions)."""
     n = r.t.shape[0]
-    yr = r.y[:, :, 0]
     yf = r.final[:, 0]
     sg = np.where(yf < 0, -1.0, 1.0)
+    ext = [interval_extrema(r.t, r.y[:, :, o], r.dy[:, :, o]) for o in range(3)]
     with np.errstate(invalid="ignore", divide="ignore"):
-        peak = refined_peak(r, 0, sg)
+        peak = refined_peak(r, 0, sg, ext[0])
         overshoot = np.maximum(0.0, (peak - np.abs(yf)) / np.abs(yf) * 100)
-        ysn = yr * sg[:, None]
-        rise = []
-        crest = interval_max(r.t, ysn, r.dy[:, :, 0] * sg[:, None])
-        for frac in (0.1, 0.9):
-            lvl = frac * np.abs(yf)
-            above = crest >= lvl[:, None]
-            k = np.argmax(above, axis=1)
-            tr = refined_crossing(r, 0, k, lvl * sg, np.zeros(n), absolute=False, last=False)
-            rise.append(np.where(above.any(axis=1), tr, np.inf))
-        settle = _settling(r, 0, band * np.abs(yf))
+        crest = np.where(sg[:, None] > 0, ext[0][0], -ext[0][1])        # of sign * y
+        lvl = np.abs(yf)[:, None] * np.array([0.1, 0.9])                 # 10 % and 90 % levels
+        above = crest[:, None, :] >= lvl[:, :, None]
+        tr = refined_crossing(r, 0, np.argmax(above, axis=2), lvl * sg[:, None], np.zeros(n),
+                              absolute=False, last=False)
+        rise = np.where(above.any(axis=2), tr, np.inf).T
+        settle = _settling(r, 0, band * np.abs(yf), ext[0])
         ydf = r.final[:, 1]
-        dpeak = refined_peak(r, 1, None)
-        dsettle = _settling(r, 1, band * dpeak)
-        iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak, 1e-300), np.inf, abs_integral(r, 1))
-        upeak = refined_peak(r, 2, None)
+        dpeak = refined_peak(r, 1, None, ext[1])
+        dsettle = _settling(r, 1, band * dpeak, ext[1])
+        iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak, 1e-300), np.inf, abs_integral(r, 1, ext[1]))
+        upeak = refined_peak(r, 2, None, ext[2])
     return {
         "settling_time_s": np.where(yf != 0, settle, np.inf),
         "overshoot_pct": np.where(yf != 0, overshoot, np.nan),

@@ -83,6 +83,7 @@ TARGET_FIRST_FEASIBLE_S = 1.0
 TARGET_LEADLAG_FRACTION = 0.90
 TARGET_LEADLAG_SECONDS = 15.0
 TARGET_WALL_RATIO = 1.2
+TIMED_BUDGET_CAP = 10 ** 7       # the 15-s run: the time limit governs, the budget is only a cap
 TWO_STAGE_LEADLAG = (("lead-lag", "lead-lag"), ("lead", "lag"), ("lag", "lead"))
 
 
@@ -505,13 +506,11 @@ def bench_spec(path: str, spec: Spec, digest: str, args, out: Out) -> Result:
     seeds = run_seeds(spec)
     nsga_t = nsga.prefix(synth.wall_s, "NSGA-II @ synth wall")
     tpe_t = tpe.prefix(synth.wall_s, "TPE @ synth wall")
-    extra = []
     two = is_two_stage_third_order(spec)
-    if two:
-        rate = synth.used / max(synth.wall_s, 1e-9)
-        quick15, _ = run_synth(spec, int(max(budget, rate * TARGET_LEADLAG_SECONDS)), SEED,
-                               time_limit=TARGET_LEADLAG_SECONDS, name=f"synth, {TARGET_LEADLAG_SECONDS:g} s")
-        extra.append(quick15)
+    # as a user runs it: --time-limit 15 and a budget that does not bind (the anytime search)
+    quick15, _ = run_synth(spec, TIMED_BUDGET_CAP, SEED, time_limit=TARGET_LEADLAG_SECONDS,
+                           name=f"synth, {TARGET_LEADLAG_SECONDS:g} s")
+    extra = [quick15]
     methods = [synth, rand, nsga, tpe, seeds] + extra
     rate = synth.used / max(synth.wall_s, 1e-9)
     refs = run_reference(spec, methods, args.reference_seconds, rate, budget)
@@ -557,8 +556,13 @@ def summary(out: Out, results: list[Result]) -> None:
     infeasible = [r.name for r in results if r.scoring.best <= 0]
     if infeasible:
         out(f"- no feasible design known for: {', '.join(infeasible)}")
-    two = [r for r in results if r.two_stage_third_order]
     key15 = f"synth, {TARGET_LEADLAG_SECONDS:g} s"
+    timed = [r for r in feasible if r.rows[key15].fraction >= TARGET_LEADLAG_FRACTION]
+    out(f"- {TARGET_LEADLAG_FRACTION:.0%} of the best-known HV within {TARGET_LEADLAG_SECONDS:g} s of search "
+        f"(--time-limit {TARGET_LEADLAG_SECONDS:g}, budget not binding) on every feasible spec: "
+        f"{'MET' if len(timed) == len(feasible) else 'MISSED'} ({len(timed)} of {len(feasible)}; "
+        + ", ".join(f"{r.name} {r.rows[key15].fraction:.3f}" for r in feasible) + ")")
+    two = [r for r in results if r.two_stage_third_order]
     for r in two:
         q, s = r.rows[key15], r.rows["synth"]
         ok = q.t90_s is not None and q.t90_s <= TARGET_LEADLAG_SECONDS

@@ -5,7 +5,11 @@ Two textbook constructions, each over a small grid of targets:
 * frequency response: pick a crossover w_c, supply the phase needed for the
   phase-margin target with lead stages (largest lead of one stage at
   sin(phi) = (a - 1)/(a + 1), zero w_c/sqrt(a), pole w_c sqrt(a)), put lag stages
-  a decade below w_c, and set the gain for |L(j w_c)| = 1;
+  a decade below w_c, and set the gain for |L(j w_c)| = 1. A second placement
+  uses each lag as a roll-off: its pole below w_c and its zero at the largest
+  admissible ratio above, so the loop gain keeps falling through and past the
+  crossover (gain stabilisation of a lightly damped mode above it, common
+  practice); the lead stages then make up the lag's phase at w_c;
 * root locus: place dominant poles s_d for the damping and settling targets,
   meet the angle condition with the lead stages and the magnitude condition
   with the gain.
@@ -27,6 +31,7 @@ from .space import Space
 MAX_STAGE_LEAD_DEG = 70.0
 LAG_SPACING = 10.0          # lag zero a decade below the crossover (common practice)
 LAG_RATIO = 10.0
+ROLL_OFF_BELOW = (3.0, 10.0)   # roll-off lag: pole this factor below the crossover
 
 
 def _phase(plant: TransferFunction, s: np.ndarray) -> np.ndarray:
@@ -75,28 +80,36 @@ def frequency_seeds(plant: TransferFunction, space: Space, req: dict, n_w: int =
     lead_cols = [(zc, pc) for role, zc, pc in fam.pairs if role == "lead"]
     lag_cols = [(zc, pc) for role, zc, pc in fam.pairs if role == "lag"]
     out = []
-    for wc in wcs:
+    placements = [("classical", 0.0)] + ([("roll-off", q) for q in ROLL_OFF_BELOW] if lag_cols else [])
+    for wc, (place, q), pm in ((w, pl, m) for w in wcs for pl in placements
+                              for m in (pm_req + 5, pm_req + 15, pm_req + 30)):
         sp = _phase(plant * fam.sign, np.array([1j * wc]))[0]
-        for pm in (pm_req + 5, pm_req + 15, pm_req + 30):
-            need = np.radians(pm) - (np.pi + sp) + np.radians(90 * fam.integrator) + np.radians(6) * len(lag_cols)
-            need = (need + np.pi) % (2 * np.pi) - np.pi
-            p = np.zeros(fam.dim)
-            if lead_cols:
-                each = need / len(lead_cols)
-                if each > np.radians(MAX_STAGE_LEAD_DEG):
-                    continue
-                each = max(each, np.radians(3.0))
-                a = (1 + np.sin(each)) / (1 - np.sin(each))
-                for zc, pc in lead_cols:
-                    p[zc], p[pc] = np.log10(wc / np.sqrt(a)), np.log10(wc * np.sqrt(a))
-            elif need > np.radians(10):
+        if place == "classical":
+            lag_phase = -np.radians(6) * len(lag_cols)
+            lag_corners = (wc / LAG_SPACING, wc / LAG_SPACING / LAG_RATIO)
+        else:
+            pole = wc / q
+            zero = min(pole * 10 ** space.log_ratio, 10 ** space.log_freq[1])
+            lag_phase = (np.arctan(wc / zero) - np.arctan(wc / pole)) * len(lag_cols)
+            lag_corners = (zero, pole)
+        need = np.radians(pm) - (np.pi + sp) + np.radians(90 * fam.integrator) - lag_phase
+        need = (need + np.pi) % (2 * np.pi) - np.pi
+        p = np.zeros(fam.dim)
+        if lead_cols:
+            each = need / len(lead_cols)
+            if each > np.radians(MAX_STAGE_LEAD_DEG):
                 continue
-            for zc, pc in lag_cols:
-                z = wc / LAG_SPACING
-                p[zc], p[pc] = np.log10(z), np.log10(z / LAG_RATIO)
-            p = _unit_loop_gain(plant, fam, p, 1j * wc)
-            if p is not None:
-                out.append(p)
+            each = max(each, np.radians(3.0))
+            a = (1 + np.sin(each)) / (1 - np.sin(each))
+            for zc, pc in lead_cols:
+                p[zc], p[pc] = np.log10(wc / np.sqrt(a)), np.log10(wc * np.sqrt(a))
+        elif need > np.radians(10):
+            continue
+        for zc, pc in lag_cols:
+            p[zc], p[pc] = np.log10(lag_corners[0]), np.log10(lag_corners[1])
+        p = _unit_loop_gain(plant, fam, p, 1j * wc)
+        if p is not None:
+            out.append(p)
     return np.array(out).reshape(-1, fam.dim)
 
 

@@ -274,6 +274,7 @@ def format_record(rec: dict, title: str = "") -> str:
     out.append("")
     poles = rec["closed_loop_poles"]
     if rec["pade_order"]:
+        from .evaluate import delay        # heavy: import on use
         counted = rec.get("loop_roots_counted", -1)
         out.append(f"loop roots: the {len(poles)} roots of the quasi-polynomial Dp Dc + Np Nc e^(-theta s) "
                    f"with Re s > -{delay.DOMINANCE:g} x decay rate (Newton on the quasi-polynomial; "

@@ -67,6 +67,21 @@ def test_check_json_contract(ogata):
     assert len(d["closed_loop_poles"]) == 3 and all(len(p) == 2 for p in d["closed_loop_poles"])
 
 
+def test_check_prints_loop_roots_of_a_dead_time_loop(tmp_path):
+    # k e^(-theta s)/s under proportional control is stable exactly for 0 < k theta < pi/2, with
+    # delay margin pi/(2k) - theta (Bellman & Cooke, Differential-Difference Equations, 1963;
+    # from memory). k = 0.5, theta = 1: delay margin pi - 1.
+    p = tmp_path / "integrator_delay.toml"
+    p.write_text('name = "integrator-delay"\n[plant]\ntransfer = "exp(-1*s)/s"\n'
+                 '[controller]\nkind = "pi"\n[requirements]\nmin_delay_margin_s = 1\n')
+    r = run("check", p, "-c", "0.5")
+    assert r.exit_code == 0, r.output
+    assert "internally stable (certified)" in r.output
+    assert "loop roots" in r.output and "quasi-polynomial" in r.output
+    line = next(x for x in r.output.splitlines() if x.strip().startswith("delay_margin_s"))
+    assert abs(float(line.split()[-1]) - (np.pi - 1)) < 1e-4
+
+
 def test_check_names_the_hidden_mode(tmp_path):
     # fact of the trade: a controller zero on an unstable plant pole hides an unstable mode
     p = tmp_path / "unstable.toml"

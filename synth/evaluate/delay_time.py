@@ -97,6 +97,7 @@ HEAD_STEPS = 128         # the method of steps runs this many steps at least (an
 HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
+TAIL_CHUNK = 4096         # tail steps whose coefficients are formed in one batch
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
 TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the expansion does not match it
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
@@ -590,6 +591,13 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     ok &= np.isfinite(err).all(axis=1) & np.all(np.isfinite(res), axis=(1, 2)) & (peak > 0)
     # the tail grid, segment by segment for all live rows at once
     amp = np.abs(res).max(axis=1) / np.maximum(peak, 1e-300)[:, None]                  # (N, R)
+    # roots ordered by the size of their term where the tail starts, so that the live ones
+    # come first and each chunk below works on a prefix of the columns only
+    with np.errstate(all="ignore"):
+        size = np.where(np.isnan(roots), -np.inf, np.log(amp) + s.real * T[:, None])
+    by = np.argsort(-size, axis=1, kind="stable")
+    roots, s, amp = (np.take_along_axis(x, by, axis=1) for x in (roots, s, amp))
+    res = np.take_along_axis(res, by[:, None, :], axis=2)
     t = T.astype(float).copy()
     seg_rows, seg_t, seg_h, seg_n, seg_alive = [], [], [], [], []
     total = np.zeros(N, int)
@@ -621,16 +629,21 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     al_e = np.repeat(np.concatenate(seg_alive), n_s, axis=0)
     order = np.lexsort((t_e, rows_e))
     rows_e, h_e, t_e, al_e = rows_e[order], h_e[order], t_e[order], al_e[order]
-    se = s[rows_e]                                                  # (E, R)
     P = DEGREE
+    coef = np.empty((rows_e.size, 3, P + 1))
     with np.errstate(all="ignore"):
-        z = np.where(al_e, np.exp(se * t_e[:, None]), 0.0)          # (E, R)
-        sh = se * h_e[:, None]
-        coef = np.empty((rows_e.size, 3, P + 1))
-        re_ = res[rows_e]                                           # (E, 3, R)
-        for i in range(P + 1):                                      # Taylor coefficient i: sum r (s h)^i / i! e^(s t0)
-            coef[..., i] = np.einsum("eor,er->eo", re_, z).real / _FACT[i]
-            z = z * sh
+        for c0 in range(0, rows_e.size, TAIL_CHUNK):        # chunks of steps: arrays stay in cache
+            c = slice(c0, c0 + TAIL_CHUNK)
+            live_c = al_e[c]
+            k = int(np.flatnonzero(live_c.any(axis=0)).max(initial=-1)) + 1     # live prefix
+            se = s[rows_e[c], :k]                                       # (E, k)
+            # Taylor coefficient i of step e: sum_r r_r e^(s_r t0) (s_r h)^i / i!, all i in one product
+            w = np.empty((P + 1,) + se.shape, complex)
+            w[0] = np.where(live_c[:, :k], np.exp(se * t_e[c, None]), 0.0)
+            sh = se * h_e[c, None]
+            for i in range(1, P + 1):
+                w[i] = w[i - 1] * sh
+            coef[c] = (res[rows_e[c], :, :k] @ w.transpose(1, 2, 0)).real / _FACT[:P + 1]
     coef[..., 0] += fin[rows_e]
     cuts = np.searchsorted(rows_e, np.arange(N + 1))
     cl = [coef[cuts[i]:cuts[i + 1]] for i in range(N)]

@@ -23,7 +23,8 @@ from synth.rank import non_dominated_sort
 from synth.runs import open_run, ranked, run_search
 from synth.search.convex import ConvexProblem, fixed_pole_loop, limits_from, numerator_designs, verify
 from synth.search.explore import Progress, Search, Settings
-from synth.search.refine import al_merit, chebyshev, directions, lattice
+from synth.search.refine import (MARGIN, affordable_directions, al_merit, boundary_projections, chebyshev,
+                                 directions, lattice)
 from synth.spec import parse_spec
 from synth.structures import Family
 
@@ -154,6 +155,36 @@ def test_chebyshev_minimiser_is_pareto_optimal(vals):
         dominated = np.any(np.all(F <= F[i], axis=1) & np.any(F < F[i], axis=1))
         assert not dominated
         assert non_dominated_sort(F)[i] == 0
+
+
+def test_budget_keeps_the_extremes_and_spreads_the_rest():
+    W = directions(2, 0)                                  # 2 extremes + 6 between them
+    few = affordable_directions(W, 2, left=700, per_poll=14)
+    np.testing.assert_array_equal(few[:2], np.eye(2))
+    assert len(few) == 3
+    mid = few[2]                                          # the one kept is the middle of the lattice
+    assert abs(mid[0] - mid[1]) <= abs(W[2:, 0] - W[2:, 1]).min() + 1e-12
+    assert len(affordable_directions(W, 2, left=10 ** 6, per_poll=14)) == len(W)
+
+
+@given(st.lists(st.floats(-1.0, 1.0), min_size=3, max_size=3), st.floats(0.01, 0.3))
+@settings(max_examples=40, deadline=None)
+def test_boundary_projection_lands_on_a_linear_constraint(normal, offset):
+    # a linear constraint c(x) = a.x - b: one Newton projection reaches a.x - b = -margin
+    # exactly (the point-to-hyperplane distance formula)
+    a = np.array(normal)
+    if np.linalg.norm(a) < 1e-3:
+        return
+    d = 3
+    x_old = np.full((1, d), 0.5)
+    b = float(a @ x_old[0]) - offset                      # x_old violates by `offset`
+    moves = np.vstack([np.eye(d), -np.eye(d)]) * 0.01 + x_old[0]
+    cfun = lambda U: (U @ a - b)[:, None]
+    x = x_old + 0.003
+    out = boundary_projections(x, cfun(x), x_old, cfun(x_old), moves, cfun(moves), np.zeros(len(moves), int),
+                               np.array([1.0]))
+    for j, m in enumerate(MARGIN):
+        assert float(a @ out[0, j] - b) == pytest.approx(-m, abs=1e-9)
 
 
 def test_augmented_lagrangian_matches_its_definition():

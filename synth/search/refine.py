@@ -28,8 +28,19 @@ constraint (an Ms limit, say) therefore does not stall the search: the merit
 is finite on both sides of the boundary and the iterates slide along it. To
 turn iterates just outside the boundary into feasible designs, each poll also
 evaluates points on the segment from the search's best feasible point towards
-its current iterate (a bisection-style feasibility restoration). Without any
-feasible design yet, g_w = 0 and the same searches minimise the violation.
+its current iterate (a bisection-style feasibility restoration), and the
+Newton projection of an infeasible iterate onto the boundary of its most
+violated constraint, with the gradient fitted to the previous poll (the
+restoration step of filter methods, Fletcher & Leyffer 2002): the penalty lets
+the iterate sit just outside an active limit, the projections turn where it
+sits into feasible designs on the limit. Without any feasible design yet,
+g_w = 0 and the same searches minimise the violation.
+
+A local search needs some MIN_POLLS polls to converge, so a budget too small
+for every direction refines the extremes and evenly spaced directions between
+them first; the rest come in the restart rounds. (On the published benchmark
+plants, spreading 800 evaluations over eight directions left the lowest-IAE
+end up to 1.3 % short of what one direction reached.)
 
 All local searches poll in ONE evaluator batch per iteration, through
 ``Search.evaluate_u`` (and so ``Search.evaluate_params``). The refinement asks
@@ -50,9 +61,11 @@ INITIAL_STEP = 0.05
 MAX_STEP = 0.2
 MIN_STEP = 2e-5
 MAX_OUTER = 6
+MIN_POLLS = 25                         # polls a local search needs to converge, roughly
 RHO = 1e-4
 MU0 = 100.0
 SEGMENT = (0.5, 0.8, 0.95, 0.99)       # points on the feasible-to-iterate segment
+MARGIN = (1e-4, 3e-3)                  # normalised slack aimed at by the boundary projections
 BASE_LATTICE = {1: 1, 2: 7, 3: 4}
 MAX_LATTICE = {1: 1, 2: 15, 3: 8}
 
@@ -138,6 +151,60 @@ class _Scalariser:
         return (F - self.z) / self.span
 
 
+def poll_size(d: int, slow: bool) -> int:
+    """Points one local search evaluates per poll: compass moves, random moves, the segment
+    points and the boundary projections."""
+    return 2 * d + (0 if slow else d) + len(SEGMENT) + len(MARGIN)
+
+
+def affordable_directions(W: np.ndarray, m: int, left: int, per_poll: int) -> np.ndarray:
+    """The directions the budget left can refine properly: each needs about MIN_POLLS polls
+    to converge, so a small budget keeps the m extremes and evenly spaced directions between
+    them (the others wait for a restart round) rather than spreading thin over all of them."""
+    n_keep = max(m + (1 if m > 1 else 0), left // max(MIN_POLLS * per_poll, 1))
+    if len(W) <= n_keep:
+        return W
+    inner = np.arange(m, len(W))
+    k = n_keep - m
+    pick = np.unique(((np.arange(k) + 0.5) * len(inner) / k).astype(int))
+    return np.vstack([W[:m], W[inner[pick]]])
+
+
+def boundary_projections(x, c, x_old, c_old, ue, ce, owner, step) -> np.ndarray:
+    """Newton projections of infeasible iterates onto the boundary of their most violated
+    constraint, aimed MARGIN inside it, (L, len(MARGIN), d) with NaN where none applies.
+
+    The constraint's gradient is the least-squares plane through the poll's points around the
+    previous iterate (x_old, c_old and the compass/random moves ``ue``, ``ce`` of each
+    ``owner``): the feasibility-restoration step of filter methods (Fletcher & Leyffer, Math.
+    Program. 91, 2002), so a search that slides along the outside of an active limit also
+    leaves feasible designs next to it. The projection moves at most 10 compass steps."""
+    L, d = x.shape
+    out = np.full((L, len(MARGIN), d), np.nan)
+    viol = np.where(np.isfinite(c), c, -np.inf)
+    k = np.argmax(np.where(np.isfinite(c_old), c_old, -np.inf), axis=1)
+    for a in np.flatnonzero(viol.max(axis=1) > 0):           # one small fit per local search
+        rows = owner == a
+        cv = np.r_[c_old[a, k[a]], ce[rows, k[a]]]
+        dx = np.vstack([np.zeros(d), ue[rows] - x_old[a]])
+        ok = np.isfinite(cv)
+        if ok.sum() < d + 1 or not np.isfinite(c[a, k[a]]) or c[a, k[a]] <= 0:
+            continue
+        A = np.hstack([np.ones((ok.sum(), 1)), dx[ok]])
+        coef = np.linalg.lstsq(A, cv[ok], rcond=None)[0]
+        G = coef[1:]
+        gg = float(G @ G)
+        if not np.isfinite(gg) or gg <= 0:
+            continue
+        for j, m in enumerate(MARGIN):
+            move = -(c[a, k[a]] + m) * G / gg
+            norm = np.linalg.norm(move)
+            if norm > 10 * step[a]:
+                move *= 10 * step[a] / norm
+            out[a, j] = x[a] + move
+    return out
+
+
 def _starts(search, df, W, scal, c_all):
     """Start of each direction: the archive row minimising its scalarisation (feasible rows
     first); without feasible rows, the least violating distinct rows."""
@@ -167,6 +234,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
     W = directions(m, r) if scal.any_feasible else np.ones((min(4, max(len(df), 1)), m))
     if search.slow:                      # dead-time plants: extremes and a middle direction only
         W = W[: m + (1 if m > 1 else 0)] if m > 1 else W
+    W = affordable_directions(W, m, search._left(), poll_size(d, search.slow))
     c_all = constraint_matrix(df, search.requirements)
     x, idx = _starts(search, df, W, scal, c_all)
     L, K = len(W), c_all.shape[1]
@@ -178,6 +246,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
     phi = al_merit(g, c, lam, mu)
     feasible = df["feasible"].to_numpy(bool)[idx]
     xf = np.where(feasible[:, None], x, np.nan)          # best feasible point of each search
+    proj = np.full((L, len(MARGIN), d), np.nan)          # boundary projections for the next poll
     gf = np.where(feasible, g, np.inf)
     step = np.full(L, INITIAL_STEP)
     outer = np.zeros(L, int)
@@ -205,21 +274,25 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
             t = np.asarray(SEGMENT)[None, :, None]
             seg = np.where(seg_ok[:, None, None], xf[active, None, :] + t * (x[active, None, :] - xf[active, None, :]),
                            np.nan)
-            pts = np.clip(np.concatenate([pts, seg], axis=1), 0.0, 1.0)
+            pts = np.clip(np.concatenate([pts, seg, proj[active]], axis=1), 0.0, 1.0)
+            proj[active] = np.nan
             P = pts.shape[1]
             owner = np.repeat(np.arange(len(active)), P)
+            col = np.tile(np.arange(P), len(active))
             flat = pts.reshape(-1, d)
             real = ~np.isnan(flat[:, 0])
-            flat, owner = flat[real], owner[real]
+            flat, owner, col = flat[real], owner[real], col[real]
             n = search.fit(len(flat))
             if n <= 0:
                 break
-            flat, owner = flat[:n], owner[:n]
+            flat, owner, col = flat[:n], owner[:n], col[:n]
+            x_old, c_old = x[active].copy(), c[active].copy()
             out = search.evaluate_u(flat, "front")
             search.state["polish_rounds"] += 1
             improved = np.zeros(len(active), bool)
             if not out.empty:
-                owner = owner[search.last_keep[:n]] if len(search.last_keep) == n else owner
+                if len(search.last_keep) == n:
+                    owner, col = owner[search.last_keep[:n]], col[search.last_keep[:n]]
                 ue = out[search.ucols].to_numpy(float)
                 ce = constraint_matrix(out, search.requirements)
                 Wo = W[active[owner]]
@@ -242,6 +315,9 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
                         better = arr[best_rows] < gf[i] - 1e-12
                         sel, rows = i[better], best_rows[better]
                         xf[sel], gf[sel] = ue[rows], ge[rows]
+                local = col < 2 * d + n_rand
+                proj[active] = boundary_projections(x[active], c[active], x_old, c_old, ue[local], ce[local],
+                                                    owner[local], step[active])
             step[active] = np.where(improved, np.minimum(step[active] * 1.5, MAX_STEP), step[active] / 2)
             # outer iteration of the augmented Lagrangian where the inner search converged
             done = (step < tol) & (outer < MAX_OUTER) & (step > 0)

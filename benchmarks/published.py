@@ -11,8 +11,9 @@ to check, because the recomputed reference table uses it; family 5 at T = 0 is t
 same plant as family 4 at T = 0 and is listed once). Family 11 is families 1-5 with
 an added integrator.
 
-(a) Rules, evaluated by synth's evaluator (``synth.evaluate.evaluate_controllers``,
-    Pade order 6 for the time responses of dead-time loops, exact frequency response):
+(a) Rules, evaluated by synth's evaluator (``synth.evaluate.evaluate_controllers``;
+    with dead time, time responses from the delay equation itself and the exact
+    frequency response, the Pade(6) model only setting the horizon):
     SIMC (Skogestad, J. Process Control 13, 2003) with tauc = theta on the half-rule
     model (first order for PI, second order, series PID with Td = tau2, for PID);
     SIMC(Ms), the same rule with tauc tuned by bisection so that Ms equals the level

@@ -144,11 +144,13 @@ def test_lattice_and_directions():
     assert len(directions(3, 1)) > len(D)                                # restart rounds: denser
 
 
-@given(st.lists(st.floats(0.0, 5.0), min_size=6, max_size=6))
+@given(st.lists(st.integers(0, 5000), min_size=6, max_size=6))
 @settings(max_examples=60, deadline=None)
 def test_chebyshev_minimiser_is_pareto_optimal(vals):
-    # Miettinen (1999), thm 3.4.6: minimisers of the augmented Chebyshev function are Pareto optimal
-    F = np.array(vals).reshape(3, 2) + 0.5
+    # Miettinen (1999), thm 3.4.6: minimisers of the augmented Chebyshev function are Pareto optimal.
+    # Objective values on a 1e-3 grid: the theorem is exact, but differences near 1e-15 vanish
+    # in rho * sum(f) in floating point (hypothesis found such a tie)
+    F = np.array(vals, float).reshape(3, 2) / 1000.0 + 0.5
     for w in directions(2, 0):
         g = chebyshev(F, np.broadcast_to(w, F.shape))
         i = int(np.argmin(g))
@@ -173,7 +175,7 @@ def test_boundary_projection_lands_on_a_linear_constraint(normal, offset):
     # a linear constraint c(x) = a.x - b: one Newton projection reaches a.x - b = -margin
     # exactly (the point-to-hyperplane distance formula)
     a = np.array(normal)
-    if np.linalg.norm(a) < 1e-3:
+    if np.linalg.norm(a) < 0.1:            # keeps the move (offset / |a|) inside the 10-step cap
         return
     d = 3
     x_old = np.full((1, d), 0.5)

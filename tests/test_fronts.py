@@ -14,7 +14,7 @@ from math import comb
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import assume, given, settings, strategies as st
 from scipy.optimize import minimize
 
 from synth.evaluate import EvalOptions, evaluate
@@ -175,8 +175,7 @@ def test_boundary_projection_lands_on_a_linear_constraint(normal, offset):
     # a linear constraint c(x) = a.x - b: one Newton projection reaches a.x - b = -margin
     # exactly (the point-to-hyperplane distance formula)
     a = np.array(normal)
-    if np.linalg.norm(a) < 0.1:            # keeps the move (offset / |a|) inside the 10-step cap
-        return
+    assume(np.linalg.norm(a) >= 0.1)       # keeps the move (offset / |a|) inside the 10-step cap
     d = 3
     x_old = np.full((1, d), 0.5)
     b = float(a @ x_old[0]) - offset                      # x_old violates by `offset`

@@ -40,7 +40,7 @@ A local search needs some MIN_POLLS polls to converge, so a budget too small
 for every direction refines the extremes and evenly spaced directions between
 them first; the rest come in the restart rounds. (On the published benchmark
 plants, spreading 800 evaluations over eight directions left the lowest-IAE
-end up to 1.3 % short of what one direction reached.)
+end up to 1.2 % short of what one direction reached.)
 
 All local searches poll in ONE evaluator batch per iteration, through
 ``Search.evaluate_u`` (and so ``Search.evaluate_params``). The refinement asks

@@ -13,7 +13,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import integrate, optimize, signal
+
+import synth.evaluate.delay_time as dt
 
 from synth.evaluate.delay_time import delay_integral, delay_step_responses, delay_time_metrics
 
@@ -300,6 +304,58 @@ def test_residue_tail_keeps_the_integral_and_the_metrics():
     with_tail, steps_only = delay_time_metrics(*args, starts=starts), delay_time_metrics(*args)
     for key, v in steps_only.items():
         assert with_tail[key][0] == pytest.approx(v[0], rel=1e-8, abs=1e-12), key
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(-3.0, -0.01), st.floats(0.0, 20.0), st.floats(-2.0, 2.0), st.floats(-2.0, 2.0)),
+                min_size=1, max_size=5), st.floats(0.0, 50.0))
+def test_rest_bounds_dominate_the_expansion_after_the_cut(terms, t_end):
+    # triangle inequality: |sum r_k e^(s_k t)| <= sum |r_k| e^(Re s_k t_end) for t >= t_end (checked
+    # on a dense grid), and the integral bound is the integral of sum |r_k| e^(Re s_k t) from t_end
+    # to infinity (checked by scipy.integrate.quad)
+    s = np.array([complex(a, b) for a, b, _, _ in terms])
+    r = np.array([complex(c, d) for _, _, c, d in terms])
+    res = np.broadcast_to(r, (1, 3, r.size)).copy()
+    bound = dt._rest_bounds(res, s[None, :], np.array([t_end]), np.array([1e9]))
+    def y(t):
+        return abs(np.sum(r * np.exp(s * t)).real)
+    ts = t_end + np.linspace(0.0, 40.0 / min(-s.real), 4001)
+    assert max(y(t) for t in ts) <= bound[0, 0, 0] * (1 + 1e-12) + 1e-300
+    envelope = integrate.quad(lambda t: float(np.sum(np.abs(r) * np.exp(s.real * t))), t_end, np.inf,
+                              epsabs=0.0, epsrel=1e-11)[0]
+    assert bound[0, 1, 0] == pytest.approx(envelope, rel=1e-8, abs=1e-300)
+    assert np.all(dt._rest_bounds(res, s[None, :], np.array([t_end]), np.array([t_end]))[0] == 0.0)
+
+
+def test_metrics_stand_after_a_cut_only_where_the_rest_cannot_change_them():
+    # the same pieces with no rest, a negligible rest and a large rest after the last step
+    pn, pd, theta, cn, cd = SLOW
+    r, decay = synth_pieces(pn, pd, theta, cn, cd, tail=True)
+    K = int(np.sum(r.h[0] > 0))
+    args = (r.coef, r.h, r.t[:, :-1], r.h > 0, np.array([K]), r.final, 0.02)
+    plain = dt.metrics_from_pieces(*args)
+    tiny = dt.metrics_from_pieces(*args, rest=np.full((1, 2, 3), 1e-16))
+    large = dt.metrics_from_pieces(*args, rest=np.full((1, 2, 3), 10.0))
+    assert all(np.array_equal(plain[k], tiny[k], equal_nan=True) for k in plain)
+    for k in ("settling_time_s", "overshoot_pct", "disturbance_peak", "disturbance_settling_time_s",
+              "disturbance_iae", "control_peak"):
+        assert np.isinf(large[k][0]), k
+    assert large["rise_time_s"][0] == plain["rise_time_s"][0]      # reached before the cut: it stands
+
+
+def test_method_of_steps_cut_short_reports_no_optimistic_figures(monkeypatch):
+    # FAST_FILTER without tail starts, its steps capped well before the horizon: the IAE and the
+    # settling times cannot be established (inf), the rise time reached early still stands
+    pn, pd, theta, cn, cd = FAST_FILTER
+    decay = pade_decay(pn, pd, theta, cn, cd)
+    args = (np.asarray(pn, float), np.asarray(pd, float), np.atleast_2d(cn), np.atleast_2d(cd), theta,
+            np.array([decay]), 0.02)
+    full = delay_time_metrics(*args)
+    monkeypatch.setattr(dt, "MAX_INTERVALS", 600)
+    cut = delay_time_metrics(*args)
+    for k in ("disturbance_iae", "settling_time_s", "disturbance_settling_time_s"):
+        assert np.isfinite(full[k][0]) and np.isinf(cut[k][0]), k
+    assert cut["rise_time_s"][0] == pytest.approx(full["rise_time_s"][0], rel=1e-12)
 
 
 def test_residue_tail_refused_when_a_root_is_missing():

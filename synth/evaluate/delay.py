@@ -198,10 +198,10 @@ def newton_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray,
         conv = good & np.isfinite(s) & (np.abs(f) <= tol * scale_)
     s = np.where(conv, s, np.nan)
     s = np.where(np.abs(s.imag) <= 1e-10 * np.maximum(np.abs(s), 1e-300), s.real + 0j, s)
-    return _dedupe(s)
+    return dedupe_roots(s)
 
 
-def _dedupe(s: np.ndarray, rel: float = 1e-7) -> np.ndarray:
+def dedupe_roots(s: np.ndarray, rel: float = 1e-7) -> np.ndarray:
     """NaN out later copies of the same root in each row (sorted by real part, rightmost first)."""
     key = np.where(np.isnan(s), -np.inf, s.real)
     order = np.argsort(-key, axis=1, kind="stable")
@@ -400,7 +400,7 @@ def loop_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray, c
     damping = np.where(np.isinf(damping), 1.0, damping)
     found = inside.sum(axis=1)
     roots = np.where(inside | np.isnan(roots), roots, np.nan)       # keep the region's roots only
-    roots = _dedupe(roots)
+    roots = dedupe_roots(roots)
     return LoopRoots(roots, decay, damping, sigma, counted, found, counted == found)
 
 

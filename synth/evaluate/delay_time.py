@@ -57,9 +57,12 @@ expansion y(t) = y(inf) + sum_k r_k e^(s_k t) over the roots s_k of the quasi-po
 and the residues r_k = F(s_k)/(s_k Delta'(s_k)). The expansion truncated to these roots is
 used only where it matches the method of steps on the head's whole last dead time to
 TAIL_TOL of each response's peak (a missed root shows there, and the row then runs the
-method of steps to the horizon). The tail's steps keep h |s_k| <= RHO for every root whose
-term is still above ALIVE_TOL of the peak, so they grow as the fast terms die out; its
-polynomials are the exact Taylor coefficients of the expansion at each step's start.
+method of steps to the horizon). The tail's steps keep h |s_k| <= RHO for a root whose
+term is of the peak's size and let it grow as the term decays, so that each term's cut-off
+level x (h |s_k|)^(P+1)/(P+1)! stays at RHO^(P+1)/(P+1)! of the peak (h |s_k| <= GRADED_MU;
+terms below ALIVE_TOL leave the tail); its polynomials are the exact Taylor coefficients of
+the expansion at each step's start. The tail's cut-offs do not propagate: each step's
+coefficients come from the expansion itself, not from the step before.
 
 Metrics use the same definitions as synth.evaluate.time (grouped_time_metrics keys).
 Each interval's response is a polynomial known to rounding, so peaks (Newton on the
@@ -88,12 +91,13 @@ SUBSAMPLES = 4           # exact sub-samples per step for locating crests and cr
 MAX_INTERVALS = 1 << 14  # cap per candidate; beyond it the horizon is cut (settling then reads inf)
 TRUNCATION_TOL = 1e-11   # largest accepted cut-off estimate (relative to the signal's peak)
 PEAK_INTERVALS = 3       # sub-intervals with the highest crests refined by Newton
+CREST_SLACK = 1e-2       # an interior crest this far (rel. to the row's range) below the top sample is still refined
 MAX_REFINE = 3           # times the step may be halved for rows failing TRUNCATION_TOL
 FAST_THETA = 64.0        # a stable open-loop pole with |p| theta above this gets graded steps (see step_pattern)
 MAX_GRADED = 400         # graded steps per dead time at most
 CLEAN_DECAYS = 32.0      # a fast mode this many time constants past its excitation counts as decayed
 GRADED_MU = 4.0          # |pole| h at most on graded steps (no rounding blow-up through M^i below it)
-HEAD_STEPS = 128         # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
+HEAD_STEPS = 128          # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
 HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
@@ -477,6 +481,8 @@ class Pieces:
     m: np.ndarray              # steps per dead time of the method of steps
     truncation: np.ndarray     # largest cut-off estimate, relative to the signal's peak
     tail: np.ndarray           # True where the residue tail took over after the head
+    rest: np.ndarray           # (N, 2, 3) bounds on sup |y - y(inf)| and its integral after the last
+                               # step (0: the horizon was reached; inf: cut, no bound)
 
 
 def _starts_of(h: np.ndarray) -> np.ndarray:
@@ -503,18 +509,20 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     coefs, h_list, m, trunc = _march(pnum, pden, cnum, cden, theta, np.where(use_tail, head, full))
     t_list = [_starts_of(h) for h in h_list]
     tail_ok = np.zeros(N, bool)
+    rest = np.zeros((N, 2, 3))
     idx = np.flatnonzero(use_tail)
     for attempt in range(TAIL_RETRIES + 1):
         if idx.size == 0:
             break
-        ok, tc, th, tt = _tail(pnum, pden, cnum[idx], cden[idx], theta, np.asarray(starts)[idx],
-                               [coefs[i] for i in idx], [h_list[i] for i in idx], m[idx], horizon[idx],
-                               chain=attempt > 0)
+        ok, tc, th, tt, rb = _tail(pnum, pden, cnum[idx], cden[idx], theta, np.asarray(starts)[idx],
+                                   [coefs[i] for i in idx], [h_list[i] for i in idx], m[idx], horizon[idx],
+                                   chain=attempt > 0)
         for j, i in enumerate(idx):
             if ok[j]:
                 coefs[i] = np.concatenate([coefs[i], tc[j]])
                 h_list[i] = np.concatenate([h_list[i], th[j]])
                 t_list[i] = np.concatenate([t_list[i], tt[j]])
+                rest[i] = rb[j]
         tail_ok[idx] = ok
         fail = idx[~ok]
         head[fail] *= 2 if attempt == 0 else 4    # terms not in the expansion may still be alive: a longer head
@@ -527,7 +535,11 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
                 for j, i in enumerate(rows):
                     coefs[i], h_list[i], t_list[i] = c2[j], h2[j], _starts_of(h2[j])
                 m[rows], trunc[rows] = m2, tr2
-    return Pieces(coefs, h_list, t_list, m, trunc, tail_ok)
+    # method of steps cut at MAX_INTERVALS before the horizon: no bound on the rest
+    capped = np.array([h.size >= MAX_INTERVALS and t[-1] + h[-1] < hz for t, h, hz in zip(t_list, h_list, horizon)])
+    short = ~tail_ok & capped
+    rest[short] = np.inf
+    return Pieces(coefs, h_list, t_list, m, trunc, tail_ok, rest)
 
 
 def _residues(pnum, pden, cnum, cden, theta, roots):
@@ -557,17 +569,23 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     sub-sample of the three responses, relative to the head's peak) and the tail is used
     only where it stays below TAIL_TOL there; a stable loop then keeps it of that order.
 
-    The tail's steps shrink the roots' exponents like the head's (h |s_k| <= RHO for every
-    root whose term is still above ALIVE_TOL of the peak) and grow as fast terms die out.
+    The tail's steps shrink the roots' exponents like the head's (h |s_k| <= RHO for a term of
+    the peak's size, up to GRADED_MU as it decays: the same cut-off level for every term) and
+    grow as fast terms die out.
     Returns (ok (N,), coef list, h list, t0 list) for the tail steps."""
-    from .delay import chain_starts, newton_roots, split
+    from .delay import dedupe_roots, chain_starts, newton_roots, split
     N = cnum.shape[0]
     a, b = split(pnum, pden, cnum, cden)
     if chain:      # a retry: the first roots of the chains too (slow chains when theta is long)
         starts = np.concatenate([starts, chain_starts(a, b, theta, np.full(N, CHAIN_ROOTS * np.pi / theta),
                                                       CHAIN_ROOTS)], axis=1)
     roots = newton_roots(a, b, theta, starts)
-    res = _residues(pnum, pden, cnum, cden, theta, roots)          # (N, 3, R)
+    # real loop: the roots come in conjugate pairs with conjugate residues, so the upper
+    # half-plane ones (a root found only as its conjugate mapped there) carry twice the real
+    # part of their term and the lower ones are not needed
+    roots = dedupe_roots(np.where(roots.imag < 0, np.conj(roots), roots))
+    twice = np.where(roots.imag > 0, 2.0, 1.0)
+    res = _residues(pnum, pden, cnum, cden, theta, roots) * twice[:, None, :]   # (N, 3, R)
     fin = finals(pnum, pden, cnum, cden)                            # (N, 3)
     s = np.where(np.isnan(roots), 0.0, roots)
     T = np.array([hk.sum() for hk in head_h])
@@ -604,10 +622,14 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     live = np.flatnonzero(ok)
     while live.size:
         with np.errstate(all="ignore"):
-            alive = (amp[live] * np.exp(s[live].real * t[live, None]) > ALIVE_TOL) & ~np.isnan(roots[live])
-        fastest = np.where(alive, np.abs(s[live]), 0.0).max(axis=1)
+            level = amp[live] * np.exp(s[live].real * t[live, None])         # each term now, rel. to peak
+            alive = (level > ALIVE_TOL) & ~np.isnan(roots[live])
+            # h |s_k| at most RHO for a term of the peak's size, larger for smaller terms so that
+            # every term's cut-off level (h |s_k|)^(P+1)/(P+1)! x level stays at RHO^(P+1)/(P+1)!
+            reach = np.minimum(RHO * np.maximum(level, 1e-300) ** (-1.0 / (DEGREE + 1)), GRADED_MU)
+            H = np.where(alive, reach / np.abs(s[live]), np.inf).min(axis=1)
         count = np.maximum(TAIL_STEPS, total[live] // 4)          # segments grow: few passes
-        H = np.where(fastest > 0, RHO / np.maximum(fastest, 1e-300), (horizon[live] - t[live]) / count)
+        H = np.where(np.isfinite(H), H, (horizon[live] - t[live]) / count)
         H = np.maximum(H, 1e-300)
         count = np.minimum(count, np.maximum(np.ceil((horizon[live] - t[live]) / H), 1)).astype(int)
         seg_rows.append(live)
@@ -618,8 +640,9 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
         total[live] += count
         t[live] += count * H
         live = live[(t[live] < horizon[live]) & (total[live] < MAX_INTERVALS)]
+    rest = _rest_bounds(res, s, t, horizon)
     if not seg_rows:
-        return ok, [None] * N, [None] * N, [None] * N
+        return ok, [None] * N, [None] * N, [None] * N, rest
     # one entry per tail step: (row, start, length, live roots), ordered by row then time
     n_s = np.concatenate(seg_n)
     rows_e = np.repeat(np.concatenate(seg_rows), n_s)
@@ -649,7 +672,21 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     cl = [coef[cuts[i]:cuts[i + 1]] for i in range(N)]
     hl = [h_e[cuts[i]:cuts[i + 1]] for i in range(N)]
     tl = [t_e[cuts[i]:cuts[i + 1]] for i in range(N)]
-    return ok, cl, hl, tl
+    return ok, cl, hl, tl, rest
+
+
+def _rest_bounds(res, s, t_end, horizon):
+    """Bounds on what the residue expansion leaves after ``t_end`` where the steps stopped
+    short of the horizon (MAX_INTERVALS): sup |y - y(inf)| <= sum_k |r_k| e^(Re s_k t_end) and
+    its integral <= sum_k |r_k| e^(Re s_k t_end)/|Re s_k|, per response (N, 2, 3); zero where
+    the steps reached the horizon."""
+    with np.errstate(all="ignore"):
+        lvl = np.abs(res) * np.exp(s.real[:, None, :] * t_end[:, None, None])            # (N, 3, R)
+        lvl = np.where(res == 0, 0.0, lvl)
+        sup = lvl.sum(axis=-1)
+        integ = np.where(res == 0, 0.0, lvl / np.maximum(-s.real, 1e-300)[:, None, :]).sum(axis=-1)
+    reached = (t_end >= horizon * (1 - 1e-12))[:, None]
+    return np.stack([np.where(reached, 0.0, sup), np.where(reached, 0.0, integ)], axis=1)
 
 
 # ------------------------------------------------------------------ polynomial helpers
@@ -678,27 +715,34 @@ _SIG = np.linspace(0.0, 1.0, SUBSAMPLES + 1)
 _V0 = _vander(_SIG)
 _V1 = _vander(_SIG, DEGREE - 1)
 _V2 = _vander(_SIG, DEGREE + 1)
+# linear maps of the power-basis coefficients (P+1,): values, d/dsigma at the sub-samples and
+# the integral over each sub-interval, each one matrix product of the coefficients
+_DV1 = _deriv(np.eye(DEGREE + 1)) @ _V1.T                    # (P+1, S+1)
+_IV2 = np.diff(_antideriv(np.eye(DEGREE + 1)) @ _V2.T, axis=-1)  # (P+1, S)
 
 
 def _crest(y, d, sub):
     """Cubic Hermite maximum inside each sub-interval and where it lies.
 
     y, d: (..., S+1) values and d/dsigma; sub: sub-interval length in sigma. Returns
-    (crest value (..., S), location in [0, 1] of the sub-interval). The cubic is solved
-    only where the derivative falls from + to - (an interior crest), a sparse set."""
+    (crest value (..., S), location in [0, 1] of the sub-interval, interior (..., S) bool:
+    a stationary point, where the value is an estimate; elsewhere it is an exact sample).
+    The cubic is solved only where the derivative falls from + to - (an interior crest), a
+    sparse set."""
     y0, y1 = y[..., :-1], y[..., 1:]
     best = np.maximum(y0, y1)
     loc = (y1 > y0).astype(float)
-    idx = np.nonzero((d[..., :-1] > 0) & (d[..., 1:] < 0))
+    inner = (d[..., :-1] > 0) & (d[..., 1:] < 0)
+    idx = np.nonzero(inner)
     if idx[0].size == 0:
-        return best, loc
+        return best, loc, inner
     i1 = idx[:-1] + (idx[-1] + 1,)
     a0, a1 = y[idx], y[i1]
     d0, d1 = d[idx] * sub, d[i1] * sub
     t, val = hermite_crest(a0, a1, d0, d1)
     best[idx] = np.maximum(best[idx], val)
     loc[idx] = t
-    return best, loc
+    return best, loc, inner
 
 
 class _Piecewise:
@@ -709,10 +753,9 @@ class _Piecewise:
         self.h = h                                      # (N, K) step lengths, s
         self.t0 = t0                                    # (N, K) step starts, s
         self.valid = valid                              # (N, K) step inside the row's horizon
-        self.dc = _deriv(coef)
         self.v = coef @ _V0.T                           # (N, K, S+1)
-        self.d = self.dc @ _V1.T                        # d/dsigma
-        self._up = self._dn = None
+        self.d = coef @ _DV1                            # d/dsigma
+        self._up = self._dn = self._range = None
 
     def at(self, k, s):
         rows = np.arange(self.c.shape[0])
@@ -728,18 +771,18 @@ class _Piecewise:
         or a scalar. The crests of +y and -y are computed once; an offset only shifts them."""
         if self._up is None:
             N = self.c.shape[0]
-            u, ul = _crest(self.v, self.d, 1.0 / SUBSAMPLES)
-            w, wl = _crest(-self.v, -self.d, 1.0 / SUBSAMPLES)
             inval = ~self.valid[..., None]
-            u[np.broadcast_to(inval, u.shape)] = -np.inf
-            w[np.broadcast_to(inval, w.shape)] = -np.inf
-            self._up = (u.reshape(N, -1), ul.reshape(N, -1))
-            self._dn = (w.reshape(N, -1), wl.reshape(N, -1))
+            self._up, self._dn = [], []
+            for store, y, d in ((self._up, self.v, self.d), (self._dn, -self.v, -self.d)):
+                u, ul, ui = _crest(y, d, 1.0 / SUBSAMPLES)
+                np.copyto(u, -np.inf, where=inval)
+                np.copyto(ui, False, where=inval)
+                store += [u.reshape(N, -1), ul.reshape(N, -1), ui.reshape(N, -1)]
         sign = np.asarray(sign, float)
         if sign.ndim and np.all(sign == sign.flat[0]):
             sign = sign.flat[0]
         if sign.ndim == 0:            # one sign for every row: the cached arrays themselves
-            val, loc = self._up if sign > 0 else self._dn
+            val, loc = (self._up if sign > 0 else self._dn)[:2]
             if offset is not None:
                 with np.errstate(invalid="ignore"):        # -inf (steps past the horizon) - inf
                     val = val - offset[:, None] if sign > 0 else val + offset[:, None]
@@ -751,30 +794,57 @@ class _Piecewise:
         loc = np.where(sign > 0, self._up[1], self._dn[1])
         return val, loc
 
+    def sample_range(self):
+        """(max, min) over the horizon of the exact sub-samples, per row (computed once)."""
+        if self._range is None:
+            v = self.v
+            hi, lo = v[..., 0].copy(), v[..., 0].copy()
+            for j in range(1, v.shape[-1]):           # a short last axis: slices beat a reduction
+                np.maximum(hi, v[..., j], out=hi)
+                np.minimum(lo, v[..., j], out=lo)
+            self._range = (np.where(self.valid, hi, -np.inf).max(axis=1),
+                           np.where(self.valid, lo, np.inf).min(axis=1))
+        return self._range
+
     def sup(self, sign):
-        """sup over the horizon of sign*y (sign (N,)): the top crests refined by Newton on the
-        exact polynomial (a stationary point inside the sub-interval, else an end)."""
-        val, loc = self.crests(sign)
-        N = val.shape[0]
-        rows = np.arange(N)
+        """sup over the horizon of sign*y (sign (N,)): the largest exact sub-sample, and the
+        PEAK_INTERVALS highest interior crests at or above it (less a slack for the cubic's
+        error) refined by Newton on the exact polynomial inside their sub-interval."""
+        self.crests(1.0)
+        N = self.c.shape[0]
         sign = np.broadcast_to(np.asarray(sign, float), (N,))
-        samples = np.where(self.valid[..., None], sign[:, None, None] * self.v, -np.inf).reshape(N, -1).max(axis=1)
-        best = samples
-        mtop = min(PEAK_INTERVALS, val.shape[1])
-        top = np.argpartition(-val, mtop - 1, axis=1)[:, :mtop]
-        for j in range(mtop):
-            f = top[:, j]
-            k, js = f // SUBSAMPLES, f % SUBSAMPLES
-            lo, hi = js / SUBSAMPLES, (js + 1) / SUBSAMPLES
-            s = lo + loc[rows, f] / SUBSAMPLES
-            c, dc = self.c[rows, k], self.dc[rows, k]
-            ddc = _deriv(dc)
-            for _ in range(6):
-                g, gg = sign * _horner(dc, s), sign * _horner(ddc, s)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    step = np.where(gg < 0, g / gg, 0.0)
-                s = np.clip(s - np.nan_to_num(step), lo, hi)
-            best = np.maximum(best, sign * _horner(c, s))
+        hi, lo = self.sample_range()
+        best = np.where(sign > 0, hi, -lo)
+        slack = CREST_SLACK * np.maximum(np.abs(hi), np.abs(lo))
+        pos = sign > 0
+        if pos.all() or not pos.any():          # one sign for every row: the cached arrays
+            val, _, inner = self._up if pos[0] else self._dn
+        else:
+            val = np.where(pos[:, None], self._up[0], self._dn[0])
+            inner = np.where(pos[:, None], self._up[2], self._dn[2])
+        r, f = np.nonzero(inner & (val >= (best - slack)[:, None]))
+        if r.size == 0:
+            return best
+        v = val[r, f]
+        order = np.lexsort((-v, r))                       # by row, highest crest first
+        r, f = r[order], f[order]
+        rank = np.arange(r.size) - np.searchsorted(r, r)
+        keep = rank < PEAK_INTERVALS
+        r, f = r[keep], f[keep]
+        loc = np.where(pos[r], self._up[1][r, f], self._dn[1][r, f])
+        k, js = f // SUBSAMPLES, f % SUBSAMPLES
+        lo_s, hi_s = js / SUBSAMPLES, (js + 1) / SUBSAMPLES
+        s = lo_s + loc / SUBSAMPLES
+        c = self.c[r, k]
+        dc = _deriv(c)
+        ddc = _deriv(dc)
+        sg = sign[r]
+        for _ in range(6):
+            g, gg = sg * _horner(dc, s), sg * _horner(ddc, s)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                step = np.where(gg < 0, g / gg, 0.0)
+            s = np.clip(s - np.nan_to_num(step), lo_s, hi_s)
+        np.maximum.at(best, r, sg * _horner(c, s))
         return best
 
     def bisect(self, k, lo, hi, fn, iters=52):
@@ -790,8 +860,7 @@ class _Piecewise:
 
     def integrals(self):
         """Exact integral of y over every sub-interval, (N, K, S), in y units x seconds."""
-        F = _antideriv(self.c) @ _V2.T
-        return np.diff(F, axis=-1) * self.h[:, :, None] * self.valid[..., None]
+        return (self.c @ _IV2) * (self.h * self.valid)[:, :, None]
 
     def abs_integral(self):
         """Integral of |y|: exact where y keeps its sign in a sub-interval (crest test); where
@@ -799,8 +868,8 @@ class _Piecewise:
         ints = self.integrals()
         N, K, S = ints.shape
         self.crests(1.0)
-        hi_v, hi_l = (a.reshape(N, K, S) for a in self._up)
-        lo_v, lo_l = (a.reshape(N, K, S) for a in self._dn)
+        hi_v, hi_l = (a.reshape(N, K, S) for a in self._up[:2])
+        lo_v, lo_l = (a.reshape(N, K, S) for a in self._dn[:2])
         change = ~((-lo_v >= 0) | (hi_v <= 0)) & self.valid[..., None]
         total = np.abs(ints).sum(axis=(1, 2)) - np.abs(np.where(change, ints, 0.0)).sum(axis=(1, 2))
         n_i, k_i, j_i = np.nonzero(change)
@@ -888,9 +957,14 @@ def _pad_group(pieces: Pieces, idx):
     return c, h, t0, valid, Ks
 
 
-def metrics_from_pieces(coef, h, t0, valid, Ks, final, band) -> dict[str, np.ndarray]:
+def metrics_from_pieces(coef, h, t0, valid, Ks, final, band, rest=None) -> dict[str, np.ndarray]:
     """The grouped_time_metrics keys from piecewise responses (N, K, 3, P+1) on steps of
-    lengths h starting at t0 (N, K)."""
+    lengths h starting at t0 (N, K).
+
+    ``rest`` (N, 2, 3): bounds on sup |y - y(inf)| and on its integral after the last step
+    (Pieces.rest). Where the steps stop short of the horizon, a peak, a settling time or the
+    IAE stands only if the bound proves that the rest cannot change it (the IAE: by more than
+    1e-9 relative); otherwise it is inf, not established, never an optimistic figure."""
     pr, pd_, pu = (_Piecewise(coef[:, :, o], h, t0, valid) for o in range(3))
     yf = final[:, 0]
     sg = np.where(yf < 0, -1.0, 1.0)
@@ -905,10 +979,21 @@ def metrics_from_pieces(coef, h, t0, valid, Ks, final, band) -> dict[str, np.nda
         dsettle = _last_exit(pd_, ydf, band * dpeak, Ks)
         iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak, 1e-300), np.inf, pd_.abs_integral())
         upeak = np.maximum(np.maximum(pu.sup(one), pu.sup(-one)), np.abs(final[:, 2]))
+        if rest is not None:
+            sup_r, int_r = rest[:, 0], rest[:, 1]
+            peak = np.where(np.abs(yf) + sup_r[:, 0] <= peak, peak, np.inf)
+            overshoot = np.where(np.isfinite(peak), overshoot, np.inf)
+            settle = np.where(sup_r[:, 0] <= band * np.abs(yf), settle, np.inf)
+            dpeak_ok = np.abs(ydf) + sup_r[:, 1] <= dpeak
+            dsettle = np.where(sup_r[:, 1] <= band * dpeak, dsettle, np.inf)
+            dpeak = np.where(dpeak_ok, dpeak, np.inf)
+            iae = np.where(int_r[:, 1] <= 1e-9 * iae, iae, np.inf)
+            upeak = np.where(np.abs(final[:, 2]) + sup_r[:, 2] <= upeak, upeak, np.inf)
+        rise_t = rise[1] - rise[0]                 # inf - inf where 10 % is never reached either
     return {
         "settling_time_s": np.where(yf != 0, settle, np.inf),
         "overshoot_pct": np.where(yf != 0, overshoot, np.nan),
-        "rise_time_s": np.where(yf != 0, rise[1] - rise[0], np.inf),
+        "rise_time_s": np.where((yf != 0) & np.isfinite(rise_t), rise_t, np.inf),
         "steady_state_error": np.abs(1.0 - yf),
         "disturbance_peak": dpeak,
         "disturbance_settling_time_s": dsettle,
@@ -933,7 +1018,7 @@ def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     for b in np.unique(bucket):
         idx = np.flatnonzero(bucket == b)
         c, h, t0, valid, Ks = _pad_group(pieces, idx)
-        for key, v in metrics_from_pieces(c, h, t0, valid, Ks, final[idx], band).items():
+        for key, v in metrics_from_pieces(c, h, t0, valid, Ks, final[idx], band, pieces.rest[idx]).items():
             out.setdefault(key, np.full(N, np.nan))[idx] = v
     return out
 

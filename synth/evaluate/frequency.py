@@ -339,10 +339,12 @@ PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
 PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
 
 
-def _grid_peak(f, grid, v=None, iters: int = 50):
+def _grid_peak(f, grid, v=None, iters: int = 38):
     """Max of f(rows, w) over the grid: the largest few local maxima each refined by
     golden-section search in log-frequency (several near-equal maxima occur with dead time).
-    ``v`` are the grid values when already known."""
+    ``v`` are the grid values when already known. 38 steps shrink a grid interval (0.035 in
+    ln w at 1,200 points) to 1e-9: the frequency to 1e-9 relative, the peak (quadratic in the
+    error) to about 1e-12 relative even for a resonance with Q = 1,000."""
     n, K = grid.shape
     if v is None:
         v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
@@ -378,11 +380,12 @@ def _grid_peak(f, grid, v=None, iters: int = 50):
     return cand_v[r, j], cand_w[r, j]
 
 
-def _bisect_crossings(fun, grid, vals, iters: int = 60, first_only: bool = False, select=None):
+def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False, select=None):
     """Sign changes of ``vals`` along each grid row, refined by bisection on fun(rows, w).
 
     All (candidate, interval) pairs are refined together (only those in ``select`` when
-    given). Returns an (N, M) NaN-padded array of crossing frequencies.
+    given). Returns an (N, M) NaN-padded array of crossing frequencies; 48 halvings of a
+    grid interval reach the spacing of doubles in ln w.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])

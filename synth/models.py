@@ -27,7 +27,6 @@ from fractions import Fraction
 from functools import cached_property
 
 import numpy as np
-from scipy.stats import qmc
 
 from .lti import TransferFunction, poly_from_roots
 
@@ -194,6 +193,7 @@ class ModelSet:
                 big_hi = abs(hi[idx]) >= abs(b.lo[idx])
                 dc[where[0]] = big_hi if pos else not big_hi
         rows.append(dc)
+        from scipy.stats import qmc          # on use: scipy.stats costs ~1 s to import
         sob = qmc.Sobol(k, scramble=True, seed=0).random(2 * SUBSET_VERTICES) >= 0.5
         rows += list(sob)
         uniq, seen = [], set()
@@ -212,6 +212,7 @@ class ModelSet:
         b = self.box
         if b is None or b.k == 0 or self.samples == 0:
             return np.zeros((0, 0))
+        from scipy.stats import qmc
         u = qmc.Sobol(b.k, scramble=True, seed=1).random_base2(int(math.ceil(math.log2(self.samples))))
         u = u[: self.samples]
         c = np.tile(b.lo, (self.samples, 1))

@@ -182,18 +182,19 @@ def precise_roots(coeffs, digits: int = 40) -> np.ndarray:
         return np.array(out)
 
 
-def certificate(char, decay_rate: float | None = None) -> dict:
+def certificate(char, decay_rate: float | None = None, roots: bool = True) -> dict:
     """Exact Routh-Hurwitz verdict on the characteristic polynomial and on its shift.
 
     Returns ``{"hurwitz": bool, "decay_rate_certified": bool | None, "poles": ndarray,
     "text": str}``; the decay check certifies every pole left of -decay_rate by the
-    Hurwitz test on char(s - decay_rate).
+    Hurwitz test on char(s - decay_rate). ``roots=False`` leaves out the 40-digit poles
+    (``poles`` None): the verdict alone is a fraction of their cost.
     """
     hur = is_hurwitz_exact(trim(char))
     dec = None
     if decay_rate is not None and decay_rate > 0:
         dec = is_hurwitz_exact(shift_exact(char, decay_rate))
-    poles = precise_roots(char)
+    poles = precise_roots(char) if roots else None
     text = ("exact Routh-Hurwitz test (rational arithmetic): all closed-loop poles in the open left half plane"
             if hur else "exact Routh-Hurwitz test (rational arithmetic): NOT stable")
     if dec is not None:

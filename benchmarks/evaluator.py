@@ -497,16 +497,28 @@ class RefResponse:
         return sign * float(self.at(t)[0, j])
 
 
-def _refined_peak(r: RefResponse, j: int, sign: float) -> float:
-    """max over time of sign*y_j, refined by bounded Brent next to the largest sample."""
+def _refined_peak(r: RefResponse, j: int, sign: float, candidates: int = 8) -> float:
+    """max over time of sign*y_j, refined by bounded Brent next to the largest samples.
+
+    Every local maximum of the samples within 1 % of the sampled range below the largest
+    (at most ``candidates`` of them, highest first) is refined: where the envelope of a lightly
+    damped mode is flat, neighbouring crests differ by less than the samples' own error
+    (~(pi/64)^2/2 of the amplitude at 64 samples per period), so the largest sample need not
+    sit next to the highest crest."""
     v = sign * r.y[:, j]
-    k = int(np.argmax(v))
-    lo, hi = r.t[max(k - 1, 0)], r.t[min(k + 1, r.t.size - 1)]
-    if hi <= lo:
-        return float(v[k])
-    res = sopt.minimize_scalar(lambda t: -r.value(t, j, sign), bounds=(lo, hi), method="bounded",
-                               options={"xatol": 1e-13 * hi, "maxiter": 200})
-    return max(float(v[k]), -float(res.fun))
+    k0 = int(np.argmax(v))
+    inner = np.flatnonzero((v[1:-1] >= v[:-2]) & (v[1:-1] >= v[2:])) + 1
+    near = inner[v[inner] >= v[k0] - 1e-2 * (np.ptp(v) + 1e-300)]
+    ks = [k0] + [int(k) for k in near[np.argsort(-v[near])][:candidates] if k != k0]
+    best = float(v[k0])
+    for k in ks:
+        lo, hi = r.t[max(k - 1, 0)], r.t[min(k + 1, r.t.size - 1)]
+        if hi <= lo:
+            continue
+        res = sopt.minimize_scalar(lambda t: -r.value(t, j, sign), bounds=(lo, hi), method="bounded",
+                                   options={"xatol": 1e-13 * hi, "maxiter": 200})
+        best = max(best, float(v[k]), -float(res.fun))
+    return best
 
 
 def _crossing(r: RefResponse, j: int, k: int, level: float, sign: float = 1.0) -> float:

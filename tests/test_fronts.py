@@ -167,6 +167,8 @@ def test_budget_keeps_the_extremes_and_spreads_the_rest():
     mid = few[2]                                          # the one kept is the middle of the lattice
     assert abs(mid[0] - mid[1]) <= abs(W[2:, 0] - W[2:, 1]).min() + 1e-12
     assert len(affordable_directions(W, 2, left=10 ** 6, per_poll=14)) == len(W)
+    W3 = directions(3, 0)                                 # three objectives: every direction runs
+    assert len(affordable_directions(W3, 3, left=700, per_poll=14)) == len(W3)
 
 
 @given(st.lists(st.floats(-1.0, 1.0), min_size=3, max_size=3), st.floats(0.01, 0.3))

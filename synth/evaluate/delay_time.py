@@ -97,7 +97,7 @@ FAST_THETA = 64.0        # a stable open-loop pole with |p| theta above this get
 MAX_GRADED = 400         # graded steps per dead time at most
 CLEAN_DECAYS = 32.0      # a fast mode this many time constants past its excitation counts as decayed
 GRADED_MU = 4.0          # |pole| h at most on graded steps (no rounding blow-up through M^i below it)
-HEAD_STEPS = 128          # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
+HEAD_STEPS = 128         # the method of steps runs this many steps at least (and HEAD_DELAYS dead times)
 HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
@@ -684,7 +684,7 @@ def _rest_bounds(res, s, t_end, horizon):
         lvl = np.abs(res) * np.exp(s.real[:, None, :] * t_end[:, None, None])            # (N, 3, R)
         lvl = np.where(res == 0, 0.0, lvl)
         sup = lvl.sum(axis=-1)
-        integ = np.where(res == 0, 0.0, lvl / np.maximum(-s.real, 1e-300)[:, None, :]).sum(axis=-1)
+        integ = (lvl / np.maximum(-s.real, 1e-300)[:, None, :]).sum(axis=-1)
     reached = (t_end >= horizon * (1 - 1e-12))[:, None]
     return np.stack([np.where(reached, 0.0, sup), np.where(reached, 0.0, integ)], axis=1)
 

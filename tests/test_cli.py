@@ -82,6 +82,29 @@ def test_check_prints_loop_roots_of_a_dead_time_loop(tmp_path):
     assert abs(float(line.split()[-1]) - (np.pi - 1)) < 1e-4
 
 
+def test_check_says_why_a_time_figure_reads_inf(tmp_path, monkeypatch):
+    # a PID with a 2 ms derivative filter on e^-s/(s+1) (invented), the delay equation capped
+    # at 120 steps (the residue tail included): the settling times and the IAE cannot be
+    # established and the check says so
+    import synth.evaluate.delay_time as dt
+    p = tmp_path / "fast_filter.toml"
+    p.write_text('name = "fast-filter"\n[plant]\ntransfer = "exp(-1*s)/(s+1)"\n'
+                 '[controller]\nkind = "pid"\n[requirements]\nmax_sensitivity_peak = 3\n')
+    controller = "(0.4*s*(0.002*s+1) + 0.5 + 0.3*s)/(s*(0.002*s+1))"
+    r = run("check", p, "-c", controller)
+    assert r.exit_code == 0, r.output
+    assert "note: the delay equation" not in r.output
+    monkeypatch.setattr(dt, "MAX_INTERVALS", 120)
+    r = run("check", p, "-c", controller)
+    assert r.exit_code == 0, r.output
+    note = " ".join(r.output.split("note: the delay equation", 1)[1].split())
+    assert "120 steps" in note and "disturbance_iae" in note and "rise_time_s" not in note
+    line = next(x for x in r.output.splitlines() if x.strip().startswith("disturbance_iae"))
+    assert line.split()[-1] == "inf"
+    d = json.loads(run("check", p, "-c", controller, "--json").output)
+    assert d["time_horizon_cut"] is True
+
+
 def test_check_names_the_hidden_mode(tmp_path):
     # fact of the trade: a controller zero on an unstable plant pole hides an unstable mode
     p = tmp_path / "unstable.toml"

@@ -356,6 +356,7 @@ def test_method_of_steps_cut_short_reports_no_optimistic_figures(monkeypatch):
     for k in ("disturbance_iae", "settling_time_s", "disturbance_settling_time_s"):
         assert np.isfinite(full[k][0]) and np.isinf(cut[k][0]), k
     assert cut["rise_time_s"][0] == pytest.approx(full["rise_time_s"][0], rel=1e-12)
+    assert cut["horizon_cut"][0] and not full["horizon_cut"][0]
 
 
 def test_residue_tail_refused_when_a_root_is_missing():

@@ -100,6 +100,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
         stable, _, crossings, dmargin = delay.rhp_count(a, b, plant.delay)
         stable &= posed & ~hidden
         counted = np.full(n, -1)
+        horizon_cut = np.zeros(n, bool)
         # the search (screen) needs the roots of the stable rows only
         rows = np.flatnonzero(stable) if options.screen else np.arange(n)
         lr = delay.loop_roots(a[rows], b[rows], plant.delay, poles[rows], count=False)
@@ -165,6 +166,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
             horizon_decay = np.where(np.isfinite(dl_) & (dl_ > 0), np.fmin(dl_, d), d)
             tm = delay_time.delay_time_metrics(plant.num, plant.den, cnum[idx], cden[idx], plant.delay,
                                                horizon_decay, options.settling_band, starts=poles[idx])
+            horizon_cut[idx] = tm.pop("horizon_cut")
         else:
             rpi = rp if np.ndim(rp.num) == 1 else type(rp)(rp.num[idx], rp.den[idx])
             tm = _time_block(rpi, cnum[idx], cden[idx], char[idx], decay[idx], poles[idx], options.settling_band)
@@ -181,6 +183,7 @@ def _evaluate_controllers(plant, cnum, cden, requirements, options) -> pd.DataFr
     cols["closed_loop_poles"] = _pole_lists(poles if loop_roots is None else loop_roots)
     if loop_roots is not None:     # roots of the quasi-polynomial in the region of interest, counted
         cols["loop_roots_counted"] = counted
+        cols["time_horizon_cut"] = horizon_cut   # time figures reading inf there were not established
     cols["pade_order"] = np.full(n, options.pade_order if plant.delay else 0)
     cols["controller_hf_gain"] = controller_hf_gain(cnum, cden)
     cols["certified"] = np.zeros(n, dtype=bool)

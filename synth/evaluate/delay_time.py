@@ -1007,7 +1007,9 @@ def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
                        band: float, starts: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Time metrics (keys of synth.evaluate.time.grouped_time_metrics) of N stable loops
     with dead time ``theta`` > 0, from the delay equation (see the module docstring);
-    ``starts`` (N, R): starting points for the loop roots of the residue tail."""
+    ``starts`` (N, R): starting points for the loop roots of the residue tail. The key
+    ``horizon_cut`` (bool) marks rows whose steps stopped short of the horizon, where figures
+    no bound could establish read inf."""
     cnum, cden = np.atleast_2d(np.asarray(cnum, float)), np.atleast_2d(np.asarray(cden, float))
     N = cnum.shape[0]
     pieces = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float), starts)
@@ -1020,6 +1022,7 @@ def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
         c, h, t0, valid, Ks = _pad_group(pieces, idx)
         for key, v in metrics_from_pieces(c, h, t0, valid, Ks, final[idx], band, pieces.rest[idx]).items():
             out.setdefault(key, np.full(N, np.nan))[idx] = v
+    out["horizon_cut"] = (pieces.rest != 0).any(axis=(1, 2))   # stopped short of the horizon (MAX_INTERVALS)
     return out
 
 

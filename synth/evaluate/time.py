@@ -225,8 +225,14 @@ def fine(r: Responses, k: np.ndarray, out: int) -> tuple[np.ndarray, np.ndarray,
     k = np.asarray(k)
     multi = k.ndim == 2
     n, q = r.t.shape[0], k.shape[1] if multi else 1
-    rows = np.repeat(np.arange(n), q)
-    k = np.clip(k.reshape(-1), 0, r.t.shape[1] - 2)
+    shape = (n, q, SUBSAMPLES + 1) if multi else (n, SUBSAMPLES + 1)
+    return tuple(a.reshape(shape) for a in fine_at(r, np.repeat(np.arange(n), q), k.reshape(-1), out))
+
+
+def fine_at(r: Responses, rows: np.ndarray, k: np.ndarray, out: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exact sub-samples of output ``out`` inside interval [k_i, k_i + 1] of row rows_i (M pairs):
+    times (M, S+1) in seconds, values and derivatives."""
+    k = np.clip(k, 0, r.t.shape[1] - 2)
     w0 = r.w0[rows]
     hs = (r.t[rows, k + 1] - r.t[rows, k]) * w0 / SUBSAMPLES       # scaled sub-step
     A = r.A[rows]
@@ -236,11 +242,10 @@ def fine(r: Responses, k: np.ndarray, out: int) -> tuple[np.ndarray, np.ndarray,
     for _ in range(SUBSAMPLES):
         x = phi @ x + gam[..., None]
         xs.append(x)
-    Xf = np.concatenate(xs, axis=2).transpose(0, 2, 1)                # (Nq, S+1, n)
+    Xf = np.concatenate(xs, axis=2).transpose(0, 2, 1)                # (M, S+1, n)
     y, dy = _outputs(Xf, A, r.C[rows, out:out + 1], r.D[rows, out:out + 1])
     tf = r.t[rows, k][:, None] + np.arange(SUBSAMPLES + 1)[None, :] * (hs / w0)[:, None]
-    shape = (n, q, SUBSAMPLES + 1) if multi else (n, SUBSAMPLES + 1)
-    return tf.reshape(shape), y[..., 0].reshape(shape), (dy[..., 0] * w0[:, None]).reshape(shape)
+    return tf, y[..., 0], dy[..., 0] * w0[:, None]
 
 
 # ----------------------------------------------------------- Hermite helpers
@@ -273,7 +278,7 @@ def hermite_crest(y0, y1, d0, d1):
 
 def interval_extrema(t, y, dy):
     """Crest and trough of the cubic Hermite interpolant on each sample interval,
-    (hi, lo), each (N, K-1).
+    (hi, lo, hi_inner, lo_inner), each (N, K-1); the masks mark an interior crest (trough).
 
     From exact samples and derivatives: a crest (trough) between two samples exists
     where the derivative changes sign from + to - (- to +), and there the cubic's
@@ -285,14 +290,15 @@ def interval_extrema(t, y, dy):
     y0, y1, d0, d1 = y[:, :-1], y[:, 1:], dy[:, :-1], dy[:, 1:]
     hi, lo = np.maximum(y0, y1), np.minimum(y0, y1)
     up = d0 > 0
-    i, j = np.nonzero((up & (d1 < 0)) | ((d0 < 0) & (d1 > 0)))     # a crest or a trough inside
+    hi_in, lo_in = up & (d1 < 0), (d0 < 0) & (d1 > 0)
+    i, j = np.nonzero(hi_in | lo_in)                               # a crest or a trough inside
     if i.size:
         h = t[i, j + 1] - t[i, j]
         sg = np.where(up[i, j], 1.0, -1.0)                         # a trough is the crest of -y
         v = sg * hermite_crest(sg * y0[i, j], sg * y1[i, j], sg * d0[i, j] * h, sg * d1[i, j] * h)[1]
         hi[i, j] = np.where(sg > 0, np.maximum(hi[i, j], v), hi[i, j])
         lo[i, j] = np.where(sg < 0, np.minimum(lo[i, j], v), lo[i, j])
-    return hi, lo
+    return hi, lo, hi_in, lo_in
 
 
 def _crossing_time(t, y, dy, k, level, iters: int = 40):
@@ -326,31 +332,43 @@ def _cubic_max(t, v, dv):
     return best
 
 
-PEAK_INTERVALS = 3   # intervals with the highest cubic crests re-sampled exactly
+PEAK_INTERVALS = 3   # per row, the intervals with the highest interior crests re-sampled exactly
+CREST_SLACK = 1e-2   # an interior crest this far (rel. to the row's range) below the top sample is still refined
 
 
 def refined_peak(r: Responses, out: int, sign: np.ndarray | None, ext=None) -> np.ndarray:
     """sup over t of sign*y_out(t), or of |y_out(t)| when ``sign`` is None.
 
-    The few intervals whose cubic crests are highest are re-sampled exactly and
-    refined (near-equal crests of a lightly damped mode cannot be told apart by the
-    cubic alone); the result is never below the final value, approached as t -> inf.
-    ``ext`` is the output's (crest, trough) from interval_extrema, if already known.
+    The largest exact sample, and inside the PEAK_INTERVALS intervals per row whose interior
+    cubic crests are highest and reach the largest sample (less CREST_SLACK of the row's
+    range, far above the cubic's error at RESOLUTION) re-sampled exactly and refined: near-
+    equal crests of a lightly damped mode cannot be told apart by the cubic alone, and an
+    interval without an interior crest peaks at a sample. Never below the final value,
+    approached as t -> inf. ``ext`` is the output's interval_extrema, if already known.
     """
     y, dy = r.y[:, :, out], r.dy[:, :, out]
-    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
+    hi, lo, hi_in, lo_in = interval_extrema(r.t, y, dy) if ext is None else ext
+    ymax, ymin = y.max(axis=1), y.min(axis=1)
+    slack = CREST_SLACK * np.maximum(np.abs(ymax), np.abs(ymin))
     if sign is None:
-        crest, signs = np.maximum(hi, -lo), (1.0, -1.0)
+        best = np.maximum(ymax, -ymin)
+        parts = ((1.0, hi, hi_in), (-1.0, -lo, lo_in))
     else:
-        crest, signs = np.where(sign[:, None] > 0, hi, -lo), (sign[:, None],)
-    m = min(PEAK_INTERVALS, crest.shape[1])
-    top = np.argpartition(-crest, m - 1, axis=1)[:, :m]
-    best = np.max([(s * y).max(axis=1) for s in signs], axis=0)
-    n = y.shape[0]
-    tf, yf, df = (a.reshape(n * m, -1) for a in fine(r, top, out))   # all m intervals in one batch
-    for s in signs:
-        s = s if np.ndim(s) == 0 else np.repeat(s, m, axis=0)
-        best = np.maximum(best, _cubic_max(tf, s * yf, s * df).reshape(n, m).max(axis=1))
+        pos = sign > 0
+        best = np.where(pos, ymax, -ymin)
+        parts = ((1.0, np.where(pos[:, None], hi, -np.inf), hi_in), (-1.0, np.where(pos[:, None], -np.inf, -lo), lo_in))
+    rows, ks, sg, vals = [], [], [], []
+    for s, crest, inner in parts:
+        i, j = np.nonzero(inner & (crest >= (best - slack)[:, None]))
+        rows.append(i), ks.append(j), sg.append(np.full(i.size, s)), vals.append(crest[i, j])
+    rows, ks, sg, vals = (np.concatenate(a) for a in (rows, ks, sg, vals))
+    if rows.size:
+        order = np.lexsort((-vals, rows))                      # by row, highest crest first
+        rows, ks, sg = rows[order], ks[order], sg[order]
+        keep = np.arange(rows.size) - np.searchsorted(rows, rows) < PEAK_INTERVALS
+        rows, ks, sg = rows[keep], ks[keep], sg[keep]
+        tf, yf, df = fine_at(r, rows, ks, out)
+        np.maximum.at(best, rows, _cubic_max(tf, sg[:, None] * yf, sg[:, None] * df))
     final = np.abs(r.final[:, out]) if sign is None else r.final[:, out] * sign
     return np.maximum(best, final)
 
@@ -380,7 +398,7 @@ def _settling(r: Responses, out: int, band_abs: np.ndarray, ext=None) -> np.ndar
     y, dy = r.y[:, :, out], r.dy[:, :, out]
     final = r.final[:, out]
     e = y - final[:, None]
-    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
+    hi, lo = (interval_extrema(r.t, y, dy) if ext is None else ext)[:2]
     crest = np.maximum(hi - final[:, None], final[:, None] - lo)     # of |y - final|
     outside = crest > band_abs[:, None]
     any_out = outside.any(axis=1)
@@ -396,11 +414,11 @@ def interval_integrals(r: Responses, out: int) -> np.ndarray:
     With x' = A x + e1 for a unit step, the integral of x over an interval of length h
     is A^-1 (x_end - x_start - e1 h) (A is invertible for a stable loop).
     """
-    h = np.diff(r.t, axis=1) * r.w0[:, None]                   # scaled interval lengths
-    dX = np.diff(r.X, axis=1)                                  # (N, K-1, n)
-    dX[:, :, 0] -= h
+    dt = np.diff(r.t, axis=1)
     cainv = np.linalg.solve(r.A.transpose(0, 2, 1), r.C[:, out, :, None])[..., 0]   # (C A^-1)^T, (N, n)
-    return np.einsum("nkj,nj->nk", dX, cainv) / r.w0[:, None] + r.D[:, out, None] * np.diff(r.t, axis=1)
+    # C A^-1 (x_end - x_start) - (C A^-1)_1 h: the state projected once, then differenced
+    proj = np.diff(np.einsum("nkj,nj->nk", r.X, cainv), axis=1) - cainv[:, :1] * (dt * r.w0[:, None])
+    return proj / r.w0[:, None] + r.D[:, out, None] * dt
 
 
 def exact_integral(r: Responses, out: int) -> np.ndarray:
@@ -413,7 +431,7 @@ def abs_integral(r: Responses, out: int, ext=None) -> np.ndarray:
     Simpson with Hermite midpoints on the few intervals where it changes sign."""
     y, dy = r.y[:, :, out], r.dy[:, :, out]
     ints = interval_integrals(r, out)
-    hi, lo = interval_extrema(r.t, y, dy) if ext is None else ext
+    hi, lo = (interval_extrema(r.t, y, dy) if ext is None else ext)[:2]
     same = (lo >= 0) | (hi <= 0)
     h = np.diff(r.t, axis=1)
     ym = 0.5 * (y[:, :-1] + y[:, 1:]) + h * (dy[:, :-1] - dy[:, 1:]) / 8

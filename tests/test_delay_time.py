@@ -396,3 +396,13 @@ def test_graded_steps_match_the_oracle():
         theirs = np.array([f(t) for t in ts])
         scale = np.abs(theirs).max()
         np.testing.assert_allclose(values_at(r, ts, o), theirs, rtol=0, atol=1e-8 * scale)
+
+
+def test_midpoint_taylor_coefficients_change_basis_exactly():
+    # the tail's polynomials are expanded about each step's midpoint and written in powers of
+    # the local time: sum_i c_i (sigma - 1/2)^i must equal sum_j (c @ _FROM_MID)_j sigma^j
+    # (checked against numpy's own polynomial composition)
+    rng = np.random.default_rng(3)
+    c = rng.normal(size=dt.DEGREE + 1)
+    shifted = np.polynomial.Polynomial(c)(np.polynomial.Polynomial([-0.5, 1.0]))   # composition
+    np.testing.assert_allclose((c @ dt._FROM_MID), shifted.coef, rtol=1e-13, atol=1e-15)

@@ -57,12 +57,14 @@ expansion y(t) = y(inf) + sum_k r_k e^(s_k t) over the roots s_k of the quasi-po
 and the residues r_k = F(s_k)/(s_k Delta'(s_k)). The expansion truncated to these roots is
 used only where it matches the method of steps on the head's whole last dead time to
 TAIL_TOL of each response's peak (a missed root shows there, and the row then runs the
-method of steps to the horizon). The tail's steps keep h |s_k| <= RHO for a root whose
-term is of the peak's size and let it grow as the term decays, so that each term's cut-off
-level x (h |s_k|)^(P+1)/(P+1)! stays at RHO^(P+1)/(P+1)! of the peak (h |s_k| <= GRADED_MU;
-terms below ALIVE_TOL leave the tail); its polynomials are the exact Taylor coefficients of
-the expansion at each step's start. The tail's cut-offs do not propagate: each step's
-coefficients come from the expansion itself, not from the step before.
+method of steps to the horizon). The tail's polynomials are the exact Taylor coefficients
+of the expansion about each step's midpoint (written in powers of the local time), so a
+term's cut-off is (h |s_k| / 2)^(P+1)/(P+1)! of its size: the steps keep h |s_k| <= 2 RHO
+for a root whose term is of the peak's size and let it grow as the term decays, so that
+each term's cut-off stays at RHO^(P+1)/(P+1)! of the peak (h |s_k| <= GRADED_MU; terms below
+ALIVE_TOL leave the tail). About the midpoint rather than the step's start, the same cut-off
+allows steps twice as long. The tail's cut-offs do not propagate: each step's coefficients
+come from the expansion itself, not from the step before.
 
 Metrics use the same definitions as synth.evaluate.time (grouped_time_metrics keys).
 Each interval's response is a polynomial known to rounding, so peaks (Newton on the
@@ -76,7 +78,7 @@ that the integral's tail stays below ~1e-8 relative).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from math import factorial
+from math import comb, factorial
 
 import numpy as np
 
@@ -107,6 +109,9 @@ TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the 
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
 
 _FACT = np.array([float(factorial(i)) for i in range(DEGREE + 3)])
+# power-basis change: sum_i c_i (sigma - 1/2)^i = sum_j (c @ _FROM_MID)_j sigma^j
+_FROM_MID = np.array([[comb(i, j) * (-0.5) ** (i - j) if j <= i else 0.0 for j in range(DEGREE + 1)]
+                      for i in range(DEGREE + 1)])
 
 
 @dataclass
@@ -569,9 +574,9 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     sub-sample of the three responses, relative to the head's peak) and the tail is used
     only where it stays below TAIL_TOL there; a stable loop then keeps it of that order.
 
-    The tail's steps shrink the roots' exponents like the head's (h |s_k| <= RHO for a term of
-    the peak's size, up to GRADED_MU as it decays: the same cut-off level for every term) and
-    grow as fast terms die out.
+    The tail's steps shrink the roots' exponents like the head's (h |s_k| <= 2 RHO about the
+    midpoint for a term of the peak's size, up to GRADED_MU as it decays: the same cut-off
+    level for every term) and grow as fast terms die out.
     Returns (ok (N,), coef list, h list, t0 list) for the tail steps."""
     from .delay import dedupe_roots, chain_starts, newton_roots, split
     N = cnum.shape[0]
@@ -624,9 +629,9 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
         with np.errstate(all="ignore"):
             level = amp[live] * np.exp(s[live].real * t[live, None])         # each term now, rel. to peak
             alive = (level > ALIVE_TOL) & ~np.isnan(roots[live])
-            # h |s_k| at most RHO for a term of the peak's size, larger for smaller terms so that
-            # every term's cut-off level (h |s_k|)^(P+1)/(P+1)! x level stays at RHO^(P+1)/(P+1)!
-            reach = np.minimum(RHO * np.maximum(level, 1e-300) ** (-1.0 / (DEGREE + 1)), GRADED_MU)
+            # h |s_k| at most 2 RHO for a term of the peak's size, larger for smaller terms so that
+            # every term's cut-off level (h |s_k| / 2)^(P+1)/(P+1)! x level stays at RHO^(P+1)/(P+1)!
+            reach = np.minimum(2 * RHO * np.maximum(level, 1e-300) ** (-1.0 / (DEGREE + 1)), GRADED_MU)
             H = np.where(alive, reach / np.abs(s[live]), np.inf).min(axis=1)
         count = np.maximum(TAIL_STEPS, total[live] // 4)          # segments grow: few passes
         H = np.where(np.isfinite(H), H, (horizon[live] - t[live]) / count)
@@ -660,13 +665,14 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
             live_c = al_e[c]
             k = int(np.flatnonzero(live_c.any(axis=0)).max(initial=-1)) + 1     # live prefix
             se = s[rows_e[c], :k]                                       # (E, k)
-            # Taylor coefficient i of step e: sum_r r_r e^(s_r t0) (s_r h)^i / i!, all i in one product
+            # Taylor coefficient i about the step's midpoint: sum_r r_r e^(s_r t_mid) (s_r h)^i / i!,
+            # all i in one product, then in powers of sigma (_FROM_MID)
             w = np.empty((P + 1,) + se.shape, complex)
-            w[0] = np.where(live_c[:, :k], np.exp(se * t_e[c, None]), 0.0)
+            w[0] = np.where(live_c[:, :k], np.exp(se * (t_e[c] + 0.5 * h_e[c])[:, None]), 0.0)
             sh = se * h_e[c, None]
             for i in range(1, P + 1):
                 w[i] = w[i - 1] * sh
-            coef[c] = (res[rows_e[c], :, :k] @ w.transpose(1, 2, 0)).real / _FACT[:P + 1]
+            coef[c] = ((res[rows_e[c], :, :k] @ w.transpose(1, 2, 0)).real / _FACT[:P + 1]) @ _FROM_MID
     coef[..., 0] += fin[rows_e]
     cuts = np.searchsorted(rows_e, np.arange(N + 1))
     cl = [coef[cuts[i]:cuts[i + 1]] for i in range(N)]

@@ -772,9 +772,9 @@ class _Piecewise:
         rows = np.arange(self.c.shape[0])
         return self.t0[rows, k] + s * self.h[rows, k]
 
-    def crests(self, sign, offset=None):
-        """Cubic crests of sign*(y - offset) per sub-interval, flattened to (N, K*S); sign (N,)
-        or a scalar. The crests of +y and -y are computed once; an offset only shifts them."""
+    def _crest_cache(self):
+        """The crests of +y and of -y per sub-interval (value, location, interior), flattened to
+        (N, K*S), computed on first use."""
         if self._up is None:
             N = self.c.shape[0]
             inval = ~self.valid[..., None]
@@ -784,6 +784,11 @@ class _Piecewise:
                 np.copyto(u, -np.inf, where=inval)
                 np.copyto(ui, False, where=inval)
                 store += [u.reshape(N, -1), ul.reshape(N, -1), ui.reshape(N, -1)]
+
+    def crests(self, sign, offset=None):
+        """Cubic crests of sign*(y - offset) per sub-interval, flattened to (N, K*S); sign (N,)
+        or a scalar. The crests of +y and -y are computed once; an offset only shifts them."""
+        self._crest_cache()
         sign = np.asarray(sign, float)
         if sign.ndim and np.all(sign == sign.flat[0]):
             sign = sign.flat[0]
@@ -816,7 +821,7 @@ class _Piecewise:
         """sup over the horizon of sign*y (sign (N,)): the largest exact sub-sample, and the
         PEAK_INTERVALS highest interior crests at or above it (less a slack for the cubic's
         error) refined by Newton on the exact polynomial inside their sub-interval."""
-        self.crests(1.0)
+        self._crest_cache()
         N = self.c.shape[0]
         sign = np.broadcast_to(np.asarray(sign, float), (N,))
         hi, lo = self.sample_range()
@@ -873,7 +878,7 @@ class _Piecewise:
         it changes sign, the sub-interval is split at its extremum and at the roots (bisection)."""
         ints = self.integrals()
         N, K, S = ints.shape
-        self.crests(1.0)
+        self._crest_cache()
         hi_v, hi_l = (a.reshape(N, K, S) for a in self._up[:2])
         lo_v, lo_l = (a.reshape(N, K, S) for a in self._dn[:2])
         change = ~((-lo_v >= 0) | (hi_v <= 0)) & self.valid[..., None]

@@ -20,7 +20,9 @@ Lagrangian
 
     Phi = g_w + (1 / (2 mu)) * sum_k (max(0, lam_k + mu c_k)^2 - lam_k^2),
 
-minimised by a compass search (Kolda, Lewis & Torczon, SIAM Review 45, 2003);
+minimised by a compass search (Kolda, Lewis & Torczon, SIAM Review 45, 2003) with
+pattern moves along its last successful step (Hooke & Jeeves, J. ACM 8, 1961), which
+speed up the long walks along an active limit that axis-aligned polls take slowly;
 when the inner search converges the multipliers are updated,
 lam_k <- max(0, lam_k + mu c_k), and mu grows if the violation did not fall
 enough (Conn, Gould & Toint, SIAM J. Numer. Anal. 28, 1991). An active
@@ -33,7 +35,8 @@ Newton projection of an infeasible iterate onto the boundary of its most
 violated constraint, with the gradient fitted to the previous poll (the
 restoration step of filter methods, Fletcher & Leyffer 2002): the penalty lets
 the iterate sit just outside an active limit, the projections turn where it
-sits into feasible designs on the limit. Without any feasible design yet,
+sits into feasible designs on the limit (aimed from 1e-6 to 3e-3 inside it, so a
+design can sit as close to the limit as a rule tuned exactly to it). Without any feasible design yet,
 g_w = 0 and the same searches minimise the violation.
 
 A local search needs some MIN_POLLS polls to converge, so a budget too small
@@ -65,7 +68,8 @@ MIN_POLLS = 25                         # polls a local search needs to converge,
 RHO = 1e-4
 MU0 = 100.0
 SEGMENT = (0.5, 0.8, 0.95, 0.99)       # points on the feasible-to-iterate segment
-MARGIN = (1e-4, 3e-3)                  # normalised slack aimed at by the boundary projections
+MARGIN = (1e-6, 1e-4, 3e-3)            # normalised slack aimed at by the boundary projections
+PATTERN = (1.0, 2.0)                   # multiples of the last successful move tried next
 BASE_LATTICE = {1: 1, 2: 7, 3: 4}
 MAX_LATTICE = {1: 1, 2: 15, 3: 8}
 
@@ -153,8 +157,8 @@ class _Scalariser:
 
 def poll_size(d: int, slow: bool) -> int:
     """Points one local search evaluates per poll: compass moves, random moves, the segment
-    points and the boundary projections."""
-    return 2 * d + (0 if slow else d) + len(SEGMENT) + len(MARGIN)
+    points, the boundary projections and the pattern moves."""
+    return 2 * d + (0 if slow else d) + len(SEGMENT) + len(MARGIN) + len(PATTERN)
 
 
 def affordable_directions(W: np.ndarray, m: int, left: int, per_poll: int) -> np.ndarray:
@@ -257,6 +261,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
     proj = np.full((L, len(MARGIN), d), np.nan)          # boundary projections for the next poll
     gf = np.where(feasible, g, np.inf)
     step = np.full(L, INITIAL_STEP)
+    drift = np.zeros((L, d))                             # last successful move of each search
     outer = np.zeros(L, int)
     tol = INITIAL_STEP * 0.1 ** (outer + 1)
     viol_prev = np.maximum(c, 0).max(axis=1)
@@ -282,7 +287,10 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
             t = np.asarray(SEGMENT)[None, :, None]
             seg = np.where(seg_ok[:, None, None], xf[active, None, :] + t * (x[active, None, :] - xf[active, None, :]),
                            np.nan)
-            pts = np.clip(np.concatenate([pts, seg, proj[active]], axis=1), 0.0, 1.0)
+            # pattern moves along the last successful displacement (Hooke & Jeeves, J. ACM 8, 1961)
+            pat = x[active, None, :] + np.asarray(PATTERN)[None, :, None] * drift[active, None, :]
+            pat = np.where(np.any(drift[active] != 0, axis=1)[:, None, None], pat, np.nan)
+            pts = np.clip(np.concatenate([pts, seg, proj[active], pat], axis=1), 0.0, 1.0)
             proj[active] = np.nan
             P = pts.shape[1]
             owner = np.repeat(np.arange(len(active)), P)
@@ -295,6 +303,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
                 break
             flat, owner, col = flat[:n], owner[:n], col[:n]
             x_old, c_old = x[active].copy(), c[active].copy()
+            drift[active] = 0.0
             out = search.evaluate_u(flat, "front")
             search.state["polish_rounds"] += 1
             improved = np.zeros(len(active), bool)
@@ -317,6 +326,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
                     if target == "phi":
                         better = arr[best_rows] < phi[i] - 1e-12
                         sel, rows = i[better], best_rows[better]
+                        drift[sel] = ue[rows] - x[sel]
                         x[sel], phi[sel], g[sel], c[sel] = ue[rows], pe[rows], ge[rows], ce[rows]
                         improved[who[better]] = True
                     else:

@@ -201,7 +201,7 @@ _GROUPS = [
                            "control_gain_peak", "bandwidth_rad_s"]),
     ("Static constants", ["position_constant", "velocity_constant", "acceleration_constant", "ramp_error"]),
 ]
-_TIME_FIGURES = set(_GROUPS[1][1] + _GROUPS[2][1])     # from the step responses
+_TIME_FIGURES = _GROUPS[1][1] + _GROUPS[2][1]     # from the step responses
 
 
 def fmt_num(x: Any, digits: int = 5) -> str:
@@ -274,11 +274,11 @@ def format_record(rec: dict, title: str = "") -> str:
         for k in keys:
             out.append(f"  {k:<32}{fmt_num(rec[k]):>14}")
     if rec.get("time_horizon_cut"):
-        from .evaluate.delay_time import MAX_INTERVALS     # heavy: import on use
-        unknown = [k for _, keys in _GROUPS for k in keys if k in _TIME_FIGURES and rec[k] == math.inf]
+        from .evaluate.delay_time import HORIZON_DECAYS, MAX_INTERVALS     # heavy: import on use
+        unknown = [k for k in _TIME_FIGURES if rec[k] == math.inf]
         out += textwrap.wrap(
-            f"note: the delay equation was solved for {MAX_INTERVALS:,} steps, short of the horizon of 20 decays "
-            f"of the slowest mode; a figure reads inf where no bound on the rest of the response could establish it"
+            f"note: the delay equation was solved for {MAX_INTERVALS:,} steps, short of the horizon of "
+            f"{HORIZON_DECAYS:g} decays of the slowest mode; a figure reads inf where no bound on the rest of the response could establish it"
             + (f" ({', '.join(unknown)})" if unknown else "") + ".", 100)
     out.append("")
     poles = rec["closed_loop_poles"]

@@ -83,7 +83,7 @@ from math import comb, factorial
 import numpy as np
 
 from ..lti import batch_conv, batch_polyval, batch_roots
-from .time import batched_expm, hermite_crest
+from .time import CREST_SLACK, batched_expm, hermite_crest, highest_per_row
 
 HORIZON_DECAYS = 20.0     # horizon = this / decay rate: the IAE tail beyond it is ~e^-20 (2e-9) relative
 DEGREE = 11              # P: polynomial degree of the delayed signal on each step
@@ -93,7 +93,6 @@ SUBSAMPLES = 4           # exact sub-samples per step for locating crests and cr
 MAX_INTERVALS = 1 << 14  # cap per candidate; beyond it the horizon is cut (figures the rest could change read inf)
 TRUNCATION_TOL = 1e-11   # largest accepted cut-off estimate (relative to the signal's peak)
 PEAK_INTERVALS = 3       # sub-intervals with the highest crests refined by Newton
-CREST_SLACK = 1e-2       # an interior crest this far (rel. to the row's range) below the top sample is still refined
 MAX_REFINE = 3           # times the step may be halved for rows failing TRUNCATION_TOL
 FAST_THETA = 64.0        # a stable open-loop pole with |p| theta above this gets graded steps (see step_pattern)
 MAX_GRADED = 400         # graded steps per dead time at most
@@ -836,11 +835,7 @@ class _Piecewise:
         r, f = np.nonzero(inner & (val >= (best - slack)[:, None]))
         if r.size == 0:
             return best
-        v = val[r, f]
-        order = np.lexsort((-v, r))                       # by row, highest crest first
-        r, f = r[order], f[order]
-        rank = np.arange(r.size) - np.searchsorted(r, r)
-        keep = rank < PEAK_INTERVALS
+        keep = highest_per_row(r, val[r, f], PEAK_INTERVALS)
         r, f = r[keep], f[keep]
         loc = np.where(pos[r], self._up[1][r, f], self._dn[1][r, f])
         k, js = f // SUBSAMPLES, f % SUBSAMPLES

@@ -336,6 +336,14 @@ PEAK_INTERVALS = 3   # per row, the intervals with the highest interior crests r
 CREST_SLACK = 1e-2   # an interior crest this far (rel. to the row's range) below the top sample is still refined
 
 
+def highest_per_row(rows: np.ndarray, vals: np.ndarray, k: int) -> np.ndarray:
+    """Indices into the sparse entries (rows, vals) of the k highest values of each row,
+    ordered by row then value (highest first)."""
+    order = np.lexsort((-vals, rows))
+    r = rows[order]
+    return order[np.arange(r.size) - np.searchsorted(r, r) < k]
+
+
 def refined_peak(r: Responses, out: int, sign: np.ndarray | None, ext=None) -> np.ndarray:
     """sup over t of sign*y_out(t), or of |y_out(t)| when ``sign`` is None.
 
@@ -363,9 +371,7 @@ def refined_peak(r: Responses, out: int, sign: np.ndarray | None, ext=None) -> n
         rows.append(i), ks.append(j), sg.append(np.full(i.size, s)), vals.append(crest[i, j])
     rows, ks, sg, vals = (np.concatenate(a) for a in (rows, ks, sg, vals))
     if rows.size:
-        order = np.lexsort((-vals, rows))                      # by row, highest crest first
-        rows, ks, sg = rows[order], ks[order], sg[order]
-        keep = np.arange(rows.size) - np.searchsorted(rows, rows) < PEAK_INTERVALS
+        keep = highest_per_row(rows, vals, PEAK_INTERVALS)
         rows, ks, sg = rows[keep], ks[keep], sg[keep]
         tf, yf, df = fine_at(r, rows, ks, out)
         np.maximum.at(best, rows, _cubic_max(tf, sg[:, None] * yf, sg[:, None] * df))

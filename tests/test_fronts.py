@@ -23,8 +23,8 @@ from synth.rank import non_dominated_sort
 from synth.runs import open_run, ranked, run_search
 from synth.search.convex import ConvexProblem, fixed_pole_loop, limits_from, numerator_designs, verify
 from synth.search.explore import Progress, Search, Settings
-from synth.search.refine import (MARGIN, affordable_directions, al_merit, boundary_projections, chebyshev,
-                                 directions, lattice)
+from synth.search.refine import (MARGIN, MODEL, affordable_directions, al_merit, boundary_projections, chebyshev,
+                                 directions, lattice, projection_steps)
 from synth.spec import parse_spec
 from synth.structures import Family
 
@@ -188,6 +188,39 @@ def test_boundary_projection_lands_on_a_linear_constraint(normal, offset):
                                np.array([1.0]))
     for j, m in enumerate(MARGIN):
         assert float(a @ out[0, j] - b) == pytest.approx(-m, abs=1e-9)
+
+
+@given(st.floats(0.0, 2 * np.pi), st.floats(0.1, 0.4), st.lists(st.floats(-1.0, 1.0), min_size=2, max_size=2))
+@settings(max_examples=40, deadline=None)
+def test_projection_steps_follow_rosens_projected_gradient(angle, radius, slope):
+    # Rosen, "The gradient projection method for nonlinear programming", J. SIAM 8, 1960:
+    # with one active constraint of gradient n, the step direction is -(I - n n^T / |n|^2) a
+    # for the objective a.x, and the correction -n (c + margin) / |n|^2 reaches the
+    # linearised limit. The compass points are symmetric, so the fitted planes are central
+    # differences, exact for the linear objective and the quadratic (circle) constraint.
+    a = np.array(slope)
+    center = np.array([0.5, 0.5])
+    x_old = center + radius * np.array([np.cos(angle), np.sin(angle)])     # on the boundary
+    n = 2 * (x_old - center) / radius ** 2
+    p = a - n * (n @ a) / (n @ n)
+    assume(np.linalg.norm(p) > 1e-3)
+    h = 0.01
+    moves = x_old + np.vstack([np.eye(2), -np.eye(2)]) * h
+    cfun = lambda U: (np.sum((np.atleast_2d(U) - center) ** 2, axis=1) / radius ** 2 - 1.0)[:, None]
+    gfun = lambda U: np.atleast_2d(U) @ a
+    step = np.array([h])
+    out = projection_steps(x_old[None], gfun(x_old), cfun(x_old), x_old[None], moves, gfun(moves), cfun(moves),
+                           np.zeros(4, int), step)
+    corr = -n * (0.0 + MARGIN[1]) / (n @ n)
+    for j, length in enumerate(MODEL):
+        move = out[0, j] - x_old - corr
+        assert np.linalg.norm(move) == pytest.approx(length * h, rel=1e-9)
+        assert move / np.linalg.norm(move) == pytest.approx(-p / np.linalg.norm(p), abs=1e-7)
+    # far from the limit (inactive): plain steepest descent on the fitted plane
+    far = lambda U: cfun(U) - 100.0
+    out = projection_steps(x_old[None], gfun(x_old), far(x_old), x_old[None], moves, gfun(moves), far(moves),
+                           np.zeros(4, int), step)
+    assert (out[0, -1] - x_old) / (MODEL[-1] * h) == pytest.approx(-a / np.linalg.norm(a), abs=1e-7)
 
 
 def test_augmented_lagrangian_matches_its_definition():

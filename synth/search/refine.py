@@ -70,6 +70,7 @@ MU0 = 100.0
 SEGMENT = (0.5, 0.8, 0.95, 0.99)       # points on the feasible-to-iterate segment
 MARGIN = (1e-6, 1e-4, 3e-3)            # normalised slack aimed at by the boundary projections
 PATTERN = (1.0, 2.0)                   # multiples of the last successful move tried next
+MODEL = (1.0, 3.0, 9.0)                # lengths (in compass steps) of the gradient-projection steps
 BASE_LATTICE = {1: 1, 2: 7, 3: 4}
 MAX_LATTICE = {1: 1, 2: 15, 3: 8}
 
@@ -158,7 +159,7 @@ class _Scalariser:
 def poll_size(d: int, slow: bool) -> int:
     """Points one local search evaluates per poll: compass moves, random moves, the segment
     points, the boundary projections and the pattern moves."""
-    return 2 * d + (0 if slow else d) + len(SEGMENT) + len(MARGIN) + len(PATTERN)
+    return 2 * d + (0 if slow else d) + len(SEGMENT) + len(MARGIN) + len(PATTERN) + len(MODEL)
 
 
 def affordable_directions(W: np.ndarray, m: int, left: int, per_poll: int) -> np.ndarray:
@@ -217,6 +218,63 @@ def boundary_projections(x, c, x_old, c_old, ue, ce, owner, step) -> np.ndarray:
     return out
 
 
+def _plane(dx: np.ndarray, v: np.ndarray) -> np.ndarray | None:
+    """Gradient of the least-squares plane through values v at offsets dx (rows), or None."""
+    ok = np.isfinite(v)
+    if ok.sum() < dx.shape[1] + 1:
+        return None
+    A = np.hstack([np.ones((ok.sum(), 1)), dx[ok]])
+    G = np.linalg.lstsq(A, v[ok], rcond=None)[0][1:]
+    return G if np.all(np.isfinite(G)) else None
+
+
+def projection_steps(x, g_old, c_old, x_old, ue, ge, ce, owner, step) -> np.ndarray:
+    """Gradient-projection steps of every local search, (L, len(MODEL), d), NaN where none.
+
+    Rosen's method (J. SIAM 8, 1960) on plane models fitted to the poll around the previous
+    iterate: the scalarisation's gradient is projected onto the tangent space of the
+    constraints that the step could reach (linear model c_k + |G_k| R > 0), and a
+    minimum-norm correction brings the linearised active constraints MARGIN[1] inside.
+    A compass search walks along a curved active limit one axis at a time; this step goes
+    along it in the descent direction at MODEL lengths (in compass steps), so an extreme
+    that sits on an Ms limit gets there in a few polls."""
+    L, d = x.shape
+    out = np.full((L, len(MODEL), d), np.nan)
+    for a in range(L):
+        rows = owner == a
+        if rows.sum() < d + 1:
+            continue
+        dx = np.vstack([np.zeros(d), ue[rows] - x_old[a]])
+        Gg = _plane(dx, np.r_[g_old[a], ge[rows]])
+        if Gg is None:
+            continue
+        R = np.asarray(MODEL) * step[a]
+        N, cA = [], []
+        for k in range(c_old.shape[1]):
+            ck = c_old[a, k]
+            if not np.isfinite(ck):
+                continue
+            Gk = _plane(dx, np.r_[ck, ce[rows, k]])
+            if Gk is not None and ck + np.linalg.norm(Gk) * R[-1] > 0:
+                N.append(Gk)
+                cA.append(ck)
+        if N:
+            N = np.array(N)
+            pinv = np.linalg.pinv(N)
+            t = -(Gg - pinv @ (N @ Gg))
+            corr = -pinv @ (np.array(cA) + MARGIN[1])
+            cn = np.linalg.norm(corr)
+            if cn > 10 * step[a]:
+                corr *= 10 * step[a] / cn
+        else:
+            t, corr = -Gg, np.zeros(d)
+        tn = np.linalg.norm(t)
+        if not np.isfinite(tn) or tn <= 1e-12 * max(np.linalg.norm(Gg), 1e-300):
+            continue
+        out[a] = x_old[a] + corr + R[:, None] * (t / tn)[None, :]
+    return out
+
+
 def _starts(search, df, W, scal, c_all):
     """Start of each direction: the archive row minimising its scalarisation (feasible rows
     first); without feasible rows, the least violating distinct rows."""
@@ -259,6 +317,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
     feasible = df["feasible"].to_numpy(bool)[idx]
     xf = np.where(feasible[:, None], x, np.nan)          # best feasible point of each search
     proj = np.full((L, len(MARGIN), d), np.nan)          # boundary projections for the next poll
+    grad = np.full((L, len(MODEL), d), np.nan)           # gradient-projection steps for the next poll
     gf = np.where(feasible, g, np.inf)
     step = np.full(L, INITIAL_STEP)
     drift = np.zeros((L, d))                             # last successful move of each search
@@ -290,8 +349,9 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
             # pattern moves along the last successful displacement (Hooke & Jeeves, J. ACM 8, 1961)
             pat = x[active, None, :] + np.asarray(PATTERN)[None, :, None] * drift[active, None, :]
             pat = np.where(np.any(drift[active] != 0, axis=1)[:, None, None], pat, np.nan)
-            pts = np.clip(np.concatenate([pts, seg, proj[active], pat], axis=1), 0.0, 1.0)
+            pts = np.clip(np.concatenate([pts, seg, proj[active], pat, grad[active]], axis=1), 0.0, 1.0)
             proj[active] = np.nan
+            grad[active] = np.nan
             P = pts.shape[1]
             owner = np.repeat(np.arange(len(active)), P)
             col = np.tile(np.arange(P), len(active))
@@ -302,7 +362,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
             if n <= 0:
                 break
             flat, owner, col = flat[:n], owner[:n], col[:n]
-            x_old, c_old = x[active].copy(), c[active].copy()
+            x_old, c_old, g_old = x[active].copy(), c[active].copy(), g[active].copy()
             drift[active] = 0.0
             out = search.evaluate_u(flat, "front")
             search.state["polish_rounds"] += 1
@@ -336,6 +396,8 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
                 local = col < 2 * d + n_rand
                 proj[active] = boundary_projections(x[active], c[active], x_old, c_old, ue[local], ce[local],
                                                     owner[local], step[active])
+                grad[active] = projection_steps(x[active], g_old, c_old, x_old, ue[local], ge[local], ce[local],
+                                                owner[local], step[active])
             step[active] = np.where(improved, np.minimum(step[active] * 1.5, MAX_STEP), step[active] / 2)
             # outer iteration of the augmented Lagrangian where the inner search converged
             done = (step < tol) & (outer < MAX_OUTER) & (step > 0)

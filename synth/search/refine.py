@@ -36,7 +36,10 @@ violated constraint, with the gradient fitted to the previous poll (the
 restoration step of filter methods, Fletcher & Leyffer 2002): the penalty lets
 the iterate sit just outside an active limit, the projections turn where it
 sits into feasible designs on the limit (aimed from 1e-6 to 3e-3 inside it, so a
-design can sit as close to the limit as a rule tuned exactly to it). Without any feasible design yet,
+design can sit as close to the limit as a rule tuned exactly to it). Each poll also
+tries Rosen's gradient-projection step (J. SIAM 8, 1960) on plane models fitted to
+the previous poll, which walks along a curved active limit in the descent direction
+where compass moves leave it. Without any feasible design yet,
 g_w = 0 and the same searches minimise the violation.
 
 A local search needs some MIN_POLLS polls to converge, so a budget too small
@@ -183,6 +186,16 @@ def affordable_directions(W: np.ndarray, m: int, left: int, per_poll: int) -> np
     return np.vstack([W[:m], W[inner[pick]]])
 
 
+def _plane(dx: np.ndarray, v: np.ndarray) -> np.ndarray | None:
+    """Gradient of the least-squares plane through values v at offsets dx (rows), or None."""
+    ok = np.isfinite(v)
+    if ok.sum() < dx.shape[1] + 1:
+        return None
+    A = np.hstack([np.ones((ok.sum(), 1)), dx[ok]])
+    G = np.linalg.lstsq(A, v[ok], rcond=None)[0][1:]
+    return G if np.all(np.isfinite(G)) else None
+
+
 def boundary_projections(x, c, x_old, c_old, ue, ce, owner, step) -> np.ndarray:
     """Newton projections of infeasible iterates onto the boundary of their most violated
     constraint, aimed MARGIN inside it, (L, len(MARGIN), d) with NaN where none applies.
@@ -198,15 +211,10 @@ def boundary_projections(x, c, x_old, c_old, ue, ce, owner, step) -> np.ndarray:
     k = np.argmax(np.where(np.isfinite(c_old), c_old, -np.inf), axis=1)
     for a in np.flatnonzero(viol.max(axis=1) > 0):           # one small fit per local search
         rows = owner == a
-        cv = np.r_[c_old[a, k[a]], ce[rows, k[a]]]
-        dx = np.vstack([np.zeros(d), ue[rows] - x_old[a]])
-        ok = np.isfinite(cv)
-        if ok.sum() < d + 1 or not np.isfinite(c[a, k[a]]) or c[a, k[a]] <= 0:
+        if not np.isfinite(c[a, k[a]]) or c[a, k[a]] <= 0:
             continue
-        A = np.hstack([np.ones((ok.sum(), 1)), dx[ok]])
-        coef = np.linalg.lstsq(A, cv[ok], rcond=None)[0]
-        G = coef[1:]
-        gg = float(G @ G)
+        G = _plane(np.vstack([np.zeros(d), ue[rows] - x_old[a]]), np.r_[c_old[a, k[a]], ce[rows, k[a]]])
+        gg = float(G @ G) if G is not None else 0.0
         if not np.isfinite(gg) or gg <= 0:
             continue
         for j, m in enumerate(MARGIN):
@@ -216,16 +224,6 @@ def boundary_projections(x, c, x_old, c_old, ue, ce, owner, step) -> np.ndarray:
                 move *= 10 * step[a] / norm
             out[a, j] = x[a] + move
     return out
-
-
-def _plane(dx: np.ndarray, v: np.ndarray) -> np.ndarray | None:
-    """Gradient of the least-squares plane through values v at offsets dx (rows), or None."""
-    ok = np.isfinite(v)
-    if ok.sum() < dx.shape[1] + 1:
-        return None
-    A = np.hstack([np.ones((ok.sum(), 1)), dx[ok]])
-    G = np.linalg.lstsq(A, v[ok], rcond=None)[0][1:]
-    return G if np.all(np.isfinite(G)) else None
 
 
 def projection_steps(x, g_old, c_old, x_old, ue, ge, ce, owner, step) -> np.ndarray:

@@ -40,6 +40,7 @@ import numpy as np
 
 from ..lti import batch_add, batch_conv, batch_polyval, batch_roots
 from .frequency import deriv, mag2, positive_real_roots, scale
+from .exact_poly import padd, pderiv, pgcd, pmul, ptrim, pval, sturm_sequence, variations, variations_inf
 
 DOMINANCE = 3.0        # loop roots: the region Re s >= -DOMINANCE * decay rate (dominant-root rule of thumb, common practice)
 NEWTON_STEPS = 10
@@ -412,109 +413,22 @@ def _fr(p) -> list[Fraction]:
     return out
 
 
-def _pmul(p: list[Fraction], q: list[Fraction]) -> list[Fraction]:
-    out = [Fraction(0)] * (len(p) + len(q) - 1)
-    for i, x in enumerate(p):
-        if x:
-            for j, y in enumerate(q):
-                out[i + j] += x * y
-    return out
-
-
-def _padd(p, q):
-    n = max(len(p), len(q))
-    p = [Fraction(0)] * (n - len(p)) + list(p)
-    q = [Fraction(0)] * (n - len(q)) + list(q)
-    return _ptrim([x + y for x, y in zip(p, q)])
-
-
-def _ptrim(p):
-    p = list(p)
-    while len(p) > 1 and p[0] == 0:
-        p = p[1:]
-    return p
-
-
 def _mag2_exact(p: list[Fraction]) -> list[Fraction]:
     """|p(jw)|^2 as an exact polynomial in x = w^2 (descending)."""
     asc = p[::-1]
     ev = [c * (-1) ** (i) for i, c in enumerate(asc[0::2])][::-1] or [Fraction(0)]
     od = [c * (-1) ** (i) for i, c in enumerate(asc[1::2])][::-1] or [Fraction(0)]
-    return _padd(_pmul(ev, ev), _pmul(od, od) + [Fraction(0)])
-
-
-def _prem(p, q):
-    """Remainder of p / q (exact)."""
-    p = list(p)
-    while len(p) >= len(q) and any(p):
-        f = p[0] / q[0]
-        for i in range(len(q)):
-            p[i] -= f * q[i]
-        p = p[1:]
-    return _ptrim(p) if p else [Fraction(0)]
-
-
-def _pderiv(p):
-    n = len(p) - 1
-    return [c * (n - i) for i, c in enumerate(p[:-1])] or [Fraction(0)]
-
-
-def _pgcd(p, q):
-    while any(q):
-        p, q = q, _prem(p, q)
-    return p
-
-
-def _pdiv(p, q):
-    p = list(p)
-    out = []
-    while len(p) >= len(q):
-        f = p[0] / q[0]
-        out.append(f)
-        for i in range(len(q)):
-            p[i] -= f * q[i]
-        p = p[1:]
-    return _ptrim(out) if out else [Fraction(0)]
-
-
-def _pval(p, x):
-    v = Fraction(0)
-    for c in p:
-        v = v * x + c
-    return v
-
-
-def sturm_sequence(p: list[Fraction]) -> list[list[Fraction]]:
-    """Sturm chain p, p', -rem(...), ... (Sturm 1835) in exact arithmetic."""
-    seq = [_ptrim(p), _ptrim(_pderiv(p))]
-    while len(seq[-1]) > 1 or seq[-1][0] != 0:
-        r = _prem(seq[-2], seq[-1])
-        if not any(r):
-            break
-        seq.append([-c for c in r])
-        if len(seq[-1]) == 1:
-            break
-    return seq
-
-
-def _variations(seq, x) -> int:
-    vals = [v for v in (_pval(p, x) for p in seq) if v != 0]
-    return sum(1 for u, v in zip(vals, vals[1:]) if (u > 0) != (v > 0))
-
-
-def _variations_inf(seq) -> int:
-    vals = [p[0] for p in seq if p[0] != 0]
-    return sum(1 for u, v in zip(vals, vals[1:]) if (u > 0) != (v > 0))
+    return padd(pmul(ev, ev), pmul(od, od) + [Fraction(0)])
 
 
 def positive_roots_exact(p: list[Fraction]) -> list[tuple[Fraction, Fraction]]:
     """Isolating intervals (a, b] of the distinct positive roots of p, by Sturm counts."""
-    p = _ptrim(p)
+    p = ptrim(p)
     if len(p) <= 1:
         return []
     seq = sturm_sequence(p)
     bound = 1 + max(abs(c / p[0]) for c in p[1:])           # Cauchy's bound
-    total = _variations(seq, Fraction(0)) - _variations_inf(seq)
+    total = variations(seq, Fraction(0)) - variations_inf(seq)
     out = []
     stack = [(Fraction(0), Fraction(bound), total)]
     while stack:
@@ -525,7 +439,7 @@ def positive_roots_exact(p: list[Fraction]) -> list[tuple[Fraction, Fraction]]:
             out.append((lo, hi))
             continue
         mid = (lo + hi) / 2
-        kl = _variations(seq, lo) - _variations(seq, mid)
+        kl = variations(seq, lo) - variations(seq, mid)
         stack += [(lo, mid, kl), (mid, hi, k - kl)]
     return sorted(out)
 
@@ -561,8 +475,8 @@ def certificate(np_, dp, nc, dc, theta: float, digits: int = 40) -> dict:
     Returns {"stable": bool | None (None: not decided), "rhp_roots": int | None,
     "delay_margin_s": float, "crossings": [(w, direction, first critical delay)], "text": str}.
     """
-    A = _pmul(_fr(dc), _fr(dp))
-    B = _pmul(_fr(nc), _fr(np_))
+    A = pmul(_fr(dc), _fr(dp))
+    B = pmul(_fr(nc), _fr(np_))
     th = Fraction(float(theta))
     parts = []
     res = {"stable": None, "rhp_roots": None, "delay_margin_s": float("nan"), "crossings": []}
@@ -577,7 +491,7 @@ def certificate(np_, dp, nc, dc, theta: float, digits: int = 40) -> dict:
                        "a root chain on or right of the imaginary axis; NOT stable")
             return res
         parts.append(f"neutral loop, |b_lead/a_lead| = {float(abs(B[0] / A[0])):.6g} < 1 (exact)")
-    char = _padd(A, B)
+    char = padd(A, B)
     if char[-1] == 0:
         res.update(stable=False, text="Delta(0) = A(0) + B(0) = 0 exactly: a root at s = 0 for every delay; NOT stable")
         return res
@@ -588,11 +502,11 @@ def certificate(np_, dp, nc, dc, theta: float, digits: int = 40) -> dict:
         return res
     parts.append("delay-free loop Hurwitz (exact Routh)" if z0 == 0
                  else f"delay-free loop has {z0} root(s) in Re s > 0 (exact Routh count)")
-    W = _padd(_mag2_exact(A), [-c for c in _mag2_exact(B)])
+    W = padd(_mag2_exact(A), [-c for c in _mag2_exact(B)])
     if not any(W):
         res["text"] = "; ".join(parts + ["|A|^2 - |B|^2 vanishes identically; not certified"])
         return res
-    g = _pgcd(W, _pderiv(W))
+    g = pgcd(W, pderiv(W))
     if len(g) > 1 and positive_roots_exact(g):
         res["text"] = "; ".join(parts + ["|A|^2 - |B|^2 has a multiple positive root (tangential crossing); "
                                          "not certified"])
@@ -607,7 +521,7 @@ def certificate(np_, dp, nc, dc, theta: float, digits: int = 40) -> dict:
         a_mp = [mpmath.mpf(c.numerator) / c.denominator for c in A]
         b_mp = [mpmath.mpf(c.numerator) / c.denominator for c in B]
         for lo, hi in intervals:
-            up = _pval(W, hi) > 0                 # W rises through the root: crossing to the right
+            up = pval(W, hi) > 0                 # W rises through the root: crossing to the right
             x = _bisect_mp(wp, lo, hi, up, digits)
             w = mpmath.sqrt(x)
             ratio = -mpmath.polyval(a_mp, 1j * w) / mpmath.polyval(b_mp, 1j * w)

@@ -51,11 +51,12 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from ..lti import TransferFunction, batch_add, batch_conv, batch_roots
+from ..lti import batch_add, batch_conv, batch_roots
 from ..models import CoefficientBox, ModelSet, kharitonov_vertices
-from ..requirements import REQUIREMENTS, requirement_value, slack
+from ..requirements import REQUIREMENTS
 from . import stability
 from .core import EvalOptions, evaluate, evaluate_controllers
+from .exact_poly import padd, pmul, ptrim, sturm_count
 
 CERTIFICATE_METHOD = ("generalized Kharitonov theorem (Chapellat & Bhattacharyya 1989): the extremal segments (at most 32), "
                       "each certified by the sign of the Hurwitz determinant H_{n-1} along the segment "
@@ -243,68 +244,8 @@ def _interpolate(xs: list[int], ys: list[int]) -> list[Fraction]:
             coef[i] = (coef[i] - coef[i - 1]) / (xs[i] - xs[i - j])
     poly = [Fraction(0)]
     for i in range(n - 1, -1, -1):       # Horner on the Newton form
-        poly = _padd(_pmul(poly, [Fraction(1), Fraction(-xs[i])]), [coef[i]])
-    return _ptrim(poly)
-
-
-def _ptrim(p):
-    i = 0
-    while i < len(p) - 1 and p[i] == 0:
-        i += 1
-    return p[i:]
-
-
-def _padd(a, b):
-    n = max(len(a), len(b))
-    a = [Fraction(0)] * (n - len(a)) + list(a)
-    b = [Fraction(0)] * (n - len(b)) + list(b)
-    return [x + y for x, y in zip(a, b)]
-
-
-def _pmul(a, b):
-    out = [Fraction(0)] * (len(a) + len(b) - 1)
-    for i, x in enumerate(a):
-        for j, y in enumerate(b):
-            out[i + j] += x * y
-    return out
-
-
-def _prem(a, b):
-    """Remainder of a / b (descending, exact)."""
-    a = list(a)
-    while len(a) >= len(b) and any(a):
-        f = a[0] / b[0]
-        for i in range(len(b)):
-            a[i] -= f * b[i]
-        a = a[1:]
-    return _ptrim(a) if a else [Fraction(0)]
-
-
-def _pval(p, x):
-    v = Fraction(0)
-    for c in p:
-        v = v * x + c
-    return v
-
-
-def sturm_count(p: list[Fraction], lo: Fraction, hi: Fraction) -> int:
-    """Number of distinct real roots of p in (lo, hi] (Sturm's theorem, exact)."""
-    p = _ptrim(p)
-    if len(p) <= 1:
-        return 0
-    n = len(p) - 1
-    dp = [c * (n - i) for i, c in enumerate(p[:-1])]
-    seq = [p, dp]
-    while len(seq[-1]) > 1 or seq[-1][0] != 0:
-        r = _prem(seq[-2], seq[-1])
-        if len(r) == 1 and r[0] == 0:
-            break
-        seq.append([-c for c in r])
-
-    def changes(x):
-        vals = [v for v in (_pval(q, x) for q in seq) if v != 0]
-        return sum(1 for u, v in zip(vals, vals[1:]) if (u > 0) != (v > 0))
-    return changes(lo) - changes(hi)
+        poly = padd(pmul(poly, [Fraction(1), Fraction(-xs[i])]), [coef[i]])
+    return ptrim(poly)
 
 
 def segment_hurwitz_exact(p0, p1) -> tuple[bool, str, float | None]:

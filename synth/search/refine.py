@@ -25,7 +25,9 @@ pattern moves along its last successful step (Hooke & Jeeves, J. ACM 8, 1961), w
 speed up the long walks along an active limit that axis-aligned polls take slowly;
 when the inner search converges the multipliers are updated,
 lam_k <- max(0, lam_k + mu c_k), and mu grows if the violation did not fall
-enough (Conn, Gould & Toint, SIAM J. Numer. Anal. 28, 1991). An active
+enough (Conn, Gould & Toint, SIAM J. Numer. Anal. 28, 1991); a feasible search whose
+multipliers stay put has converged and stops, so the polls go to the searches still
+moving (the budget follows progress; the next phase restarts from the front). An active
 constraint (an Ms limit, say) therefore does not stall the search: the merit
 is finite on both sides of the boundary and the iterates slide along it. To
 turn iterates just outside the boundary into feasible designs, each poll also

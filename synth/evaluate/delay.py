@@ -407,10 +407,7 @@ def loop_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray, c
 
 # ------------------------------------------------------------------ exact certificate
 def _fr(p) -> list[Fraction]:
-    out = [Fraction(float(x)) for x in np.atleast_1d(p)]
-    while len(out) > 1 and out[0] == 0:
-        out = out[1:]
-    return out
+    return ptrim(Fraction(float(x)) for x in np.atleast_1d(p))
 
 
 def _mag2_exact(p: list[Fraction]) -> list[Fraction]:

@@ -47,8 +47,6 @@ def prem(p, q) -> list[Fraction]:
     return ptrim(p) if p else [Fraction(0)]
 
 
-
-
 def pdiv(p, q) -> list[Fraction]:
     """Quotient of p / q."""
     p = list(p)

@@ -43,6 +43,14 @@ def jw_split(p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return ev[:, ::-1], od[:, ::-1]
 
 
+def at_jw(split: tuple[np.ndarray, np.ndarray], w: np.ndarray) -> np.ndarray:
+    """p(jw) = R(w^2) + j w I(w^2) from ``split`` = jw_split(p), rows matching w (N,) or (N, K):
+    two real Horner evaluations of half the degree instead of one complex one."""
+    r, i = split
+    x = w * w
+    return batch_polyval(r, x) + 1j * w * batch_polyval(i, x)
+
+
 def times_x(p: np.ndarray) -> np.ndarray:
     return np.pad(p, ((0, 0), (0, 1)))
 
@@ -238,10 +246,10 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
     u = np.linspace(0.0, 1.0, points)
     grid = lo[:, None] * (hi / lo)[:, None] ** u[None, :]
     every = np.arange(n)
+    nls, dls = jw_split(nl), jw_split(dl)
 
     def loop(rows, w):
-        jw = 1j * w
-        return batch_polyval(nl[rows], jw) * np.exp(-delay * jw) / batch_polyval(dl[rows], jw)
+        return at_jw(_rows_of(nls, rows), w) * np.exp(-1j * delay * w) / at_jw(_rows_of(dls, rows), w)
 
     if crossings is None:
         from .delay import crossings as _crossings, split
@@ -254,9 +262,8 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
         # the exact response on the grid, once: every grid function below is built from these
-        jw = 1j * grid
-        ngr = batch_polyval(nl, jw) * np.exp(-delay * jw)
-        dgr = batch_polyval(dl, jw)
+        ngr = at_jw(nls, grid) * np.exp(-1j * delay * grid)
+        dgr = at_jw(dls, grid)
         cgr = dgr + ngr
         lgr = ngr / dgr
 
@@ -287,9 +294,9 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
         for key, num, top_grid in (("sensitivity_peak", None, dgr), ("complementary_peak", "T", ngr),
                                    ("disturbance_gain_peak", npdc, None), ("control_gain_peak", ncdp, None)):
-            f = _closed_loop_mag(nl, dl, delay, num)
+            f = _closed_loop_mag(nls, dls, delay, num if num is None or isinstance(num, str) else jw_split(num))
             if top_grid is None:
-                top_grid = batch_polyval(num, jw)
+                top_grid = at_jw(jw_split(num), grid)
             pk, wpk = _grid_peak(f, grid, np.abs(top_grid / cgr))
             at0 = f(every, np.zeros(n))
             at0 = np.where(np.isfinite(at0), at0, -np.inf)
@@ -298,7 +305,7 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
                 out[key + "_rad_s"] = np.where(at0 > pk, 0.0, wpk)
 
         # bandwidth of T: first crossing of |T(0)|/sqrt(2)
-        ft = _closed_loop_mag(nl, dl, delay, "T")
+        ft = _closed_loop_mag(nls, dls, delay, "T")
         t0 = np.abs(nl[:, -1] / (nl[:, -1] + dl[:, -1]))
         level = t0 / np.sqrt(2)
 
@@ -318,19 +325,23 @@ def _pairs_eval(fun, w: np.ndarray) -> np.ndarray:
     return out
 
 
-def _closed_loop_mag(nl, dl, delay, which):
-    """|S| (which None), |T| (which "T") or |X/(D + N e^{-sT})| for a numerator X, as a
-    function of (rows, w) 1-D arrays (|e^{-jwT}| = 1 in any numerator)."""
+def _rows_of(split, rows):
+    return split[0][rows], split[1][rows]
+
+
+def _closed_loop_mag(nls, dls, delay, which):
+    """|S| (which None), |T| (which "T") or |X/(D + N e^{-sT})| for a numerator X given as its
+    jw_split, as a function of (rows, w) 1-D arrays (|e^{-jwT}| = 1 in any numerator); N and D
+    come as their jw_split too."""
     def f(rows, w):
-        jw = 1j * w
-        nn = batch_polyval(nl[rows], jw) * np.exp(-delay * jw)
-        dd = batch_polyval(dl[rows], jw)
+        nn = at_jw(_rows_of(nls, rows), w) * np.exp(-1j * delay * w)
+        dd = at_jw(_rows_of(dls, rows), w)
         if which is None:
             top = dd
         elif isinstance(which, str):
             top = nn
         else:
-            top = batch_polyval(which[rows], jw)
+            top = at_jw(_rows_of(which, rows), w)
         return np.abs(top / (dd + nn))
     return f
 
@@ -364,12 +375,14 @@ def _grid_peak(f, grid, v=None, iters: int = 38):
     gr = (np.sqrt(5) - 1) / 2
     c, d = b - gr * (b - a), a + gr * (b - a)
     fc, fd = f(rows, np.exp(c)), f(rows, np.exp(d))
-    for _ in range(iters):
+    for _ in range(iters):     # one new evaluation per step: the kept inner point is reused
         left = fc > fd
         b = np.where(left, d, b)
         a = np.where(left, a, c)
-        c, d = b - gr * (b - a), a + gr * (b - a)
-        fc, fd = f(rows, np.exp(c)), f(rows, np.exp(d))
+        new = np.where(left, b - gr * (b - a), a + gr * (b - a))
+        fn = f(rows, np.exp(new))
+        c, d = np.where(left, new, d), np.where(left, c, new)
+        fc, fd = np.where(left, fn, fd), np.where(left, fc, fn)
     xm = 0.5 * (a + b)
     fm = np.where(ok, f(rows, np.exp(xm)), -np.inf)
     fm = np.where(np.isfinite(fm), fm, -np.inf)

@@ -599,11 +599,9 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     take = np.array([min(mi, c.shape[0]) for c, mi in zip(head, m)])
     last = np.concatenate([c[-k:] for c, k in zip(head, take)])                    # (E, 3, P+1)
     hl = np.concatenate([hk[-k:] for hk, k in zip(head_h, take)])                  # (E,)
+    t_start = np.concatenate([t - np.cumsum(hk[:-k - 1:-1])[::-1] for t, hk, k in zip(T, head_h, take)])
     row = np.repeat(np.arange(N), take)
     first = np.cumsum(take) - take
-    back = np.cumsum(hl[::-1])[::-1]                              # from each step's start to the row's end
-    back = back - np.repeat(back[first + take - 1] - hl[first + take - 1], take)
-    t_start = T[row] - back
     hv = last @ _V0.T                                             # (E, 3, S+1)
     with np.errstate(all="ignore"):
         sr = s[row]

@@ -294,9 +294,10 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
         for key, num, top_grid in (("sensitivity_peak", None, dgr), ("complementary_peak", "T", ngr),
                                    ("disturbance_gain_peak", npdc, None), ("control_gain_peak", ncdp, None)):
-            f = _closed_loop_mag(nls, dls, delay, num if num is None or isinstance(num, str) else jw_split(num))
-            if top_grid is None:
-                top_grid = at_jw(jw_split(num), grid)
+            if top_grid is None:        # a numerator of its own: split once, for the grid and refinement
+                num = jw_split(num)
+                top_grid = at_jw(num, grid)
+            f = _closed_loop_mag(nls, dls, delay, num)
             pk, wpk = _grid_peak(f, grid, np.abs(top_grid / cgr))
             at0 = f(every, np.zeros(n))
             at0 = np.where(np.isfinite(at0), at0, -np.inf)

@@ -332,7 +332,7 @@ def test_metrics_stand_after_a_cut_only_where_the_rest_cannot_change_them():
     pn, pd, theta, cn, cd = SLOW
     r, decay = synth_pieces(pn, pd, theta, cn, cd, tail=True)
     K = int(np.sum(r.h[0] > 0))
-    args = (r.coef, r.h, r.t[:, :-1], r.h > 0, np.array([K]), r.final, 0.02)
+    args = (r.coef[0, :K], r.h[0, :K], r.t[0, :K], np.array([K]), r.final, 0.02)
     plain = dt.metrics_from_pieces(*args)
     tiny = dt.metrics_from_pieces(*args, rest=np.full((1, 2, 3), 1e-16))
     large = dt.metrics_from_pieces(*args, rest=np.full((1, 2, 3), 10.0))

@@ -103,6 +103,7 @@ HEAD_DELAYS = 8
 TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's last dead time (relative to peak)
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
 TAIL_CHUNK = 4096         # tail steps whose coefficients are formed in one batch
+METRIC_CHUNK = 1 << 15    # steps whose metrics are computed in one batch (rows kept whole)
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
 TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the expansion does not match it
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
@@ -733,125 +734,134 @@ _DV1 = _deriv(np.eye(DEGREE + 1)) @ _V1.T                    # (P+1, S+1)
 _IV2 = np.diff(_antideriv(np.eye(DEGREE + 1)) @ _V2.T, axis=-1)  # (P+1, S)
 
 
-def _crest(y, d, sub):
-    """Cubic Hermite maximum inside each sub-interval and where it lies.
-
-    y, d: (..., S+1) values and d/dsigma; sub: sub-interval length in sigma. Returns
-    (crest value (..., S), location in [0, 1] of the sub-interval, interior (..., S) bool:
-    a stationary point, where the value is an estimate; elsewhere it is an exact sample).
-    The cubic is solved only where the derivative falls from + to - (an interior crest), a
-    sparse set."""
-    y0, y1 = y[..., :-1], y[..., 1:]
-    best = np.maximum(y0, y1)
-    loc = (y1 > y0).astype(float)
-    inner = (d[..., :-1] > 0) & (d[..., 1:] < 0)
-    idx = np.nonzero(inner)
-    if idx[0].size == 0:
-        return best, loc, inner
-    i1 = idx[:-1] + (idx[-1] + 1,)
-    a0, a1 = y[idx], y[i1]
-    d0, d1 = d[idx] * sub, d[i1] * sub
-    t, val = hermite_crest(a0, a1, d0, d1)
-    best[idx] = np.maximum(best[idx], val)
-    loc[idx] = t
-    return best, loc, inner
-
-
 class _Piecewise:
-    """One response of N loops as piecewise polynomials on a common number of steps K."""
+    """One response of N loops as piecewise polynomials, the steps of all rows one after
+    another (row i owns steps start[i]:start[i+1], in time order).
 
-    def __init__(self, coef: np.ndarray, h: np.ndarray, t0: np.ndarray, valid: np.ndarray):
-        self.c = coef                                   # (N, K, P+1)
-        self.h = h                                      # (N, K) step lengths, s
-        self.t0 = t0                                    # (N, K) step starts, s
-        self.valid = valid                              # (N, K) step inside the row's horizon
-        self.v = coef @ _V0.T                           # (N, K, S+1)
-        self.d = coef @ _DV1                            # d/dsigma
-        self._up = self._dn = self._range = None
+    Arrays over the steps are held step-last: coefficients (P+1, E), sub-sample values and
+    d/dsigma (S+1, E), crests (S, E). Each sub-sample's slice is then contiguous, so the
+    element-wise passes run at memory speed, and no row is padded to another's length."""
 
-    def at(self, k, s):
-        rows = np.arange(self.c.shape[0])
-        return _horner(self.c[rows, k], s)
+    def __init__(self, coef: np.ndarray, h: np.ndarray, t0: np.ndarray, row: np.ndarray, start: np.ndarray):
+        self.c = coef                                   # (P+1, E) power basis in local time sigma
+        self.h = h                                      # (E,) step lengths, s
+        self.t0 = t0                                    # (E,) step starts, s
+        self.row = row                                  # (E,) the row of each step
+        self.start = start                              # (N+1,) first step of each row, then E
+        self.v = _V0 @ coef                             # (S+1, E) exact sub-samples
+        self.d = _DV1.T @ coef                          # d/dsigma there
+        self._cache: dict = {}
+        self._range = None
 
-    def time(self, k, s):
-        """Time (s) of local point s in step k, per row."""
-        rows = np.arange(self.c.shape[0])
-        return self.t0[rows, k] + s * self.h[rows, k]
+    def at(self, e, s):
+        """Values at local point s of steps e."""
+        return _horner(self.c.T[e], s)
 
-    def _crest_cache(self):
-        """The crests of +y and of -y per sub-interval (value, location, interior), flattened to
-        (N, K*S), computed on first use."""
-        if self._up is None:
-            N = self.c.shape[0]
-            inval = ~self.valid[..., None]
-            self._up, self._dn = [], []
-            for store, y, d in ((self._up, self.v, self.d), (self._dn, -self.v, -self.d)):
-                u, ul, ui = _crest(y, d, 1.0 / SUBSAMPLES)
-                np.copyto(u, -np.inf, where=inval)
-                np.copyto(ui, False, where=inval)
-                store += [u.reshape(N, -1), ul.reshape(N, -1), ui.reshape(N, -1)]
+    def time(self, e, s):
+        """Time (s) of local point s of steps e."""
+        return self.t0[e] + s * self.h[e]
 
-    def crests(self, sign, offset=None):
-        """Cubic crests of sign*(y - offset) per sub-interval, flattened to (N, K*S); sign (N,)
-        or a scalar. The crests of +y and -y are computed once; an offset only shifts them."""
-        self._crest_cache()
+    def crests(self, sign: float):
+        """Cubic crests of sign*y per sub-interval (sign +1 or -1), computed on first use:
+        (value (S, E), interior (S, E) bool: a stationary point, where the value is an
+        estimate, elsewhere an exact sample; the crest's place in the sub-interval, read only
+        where interior). The cubic is solved only where the derivative falls from + to -."""
+        sign = float(sign)
+        if sign not in self._cache:
+            v, d = self.v, self.d
+            if sign > 0:
+                best = np.maximum(v[:-1], v[1:])
+                inner = (d[:-1] > 0) & (d[1:] < 0)
+            else:
+                best = np.minimum(v[:-1], v[1:])
+                np.negative(best, out=best)
+                inner = (d[:-1] < 0) & (d[1:] > 0)
+            tloc = np.empty(best.shape)
+            idx = np.nonzero(inner)
+            if idx[0].size:
+                i1 = (idx[0] + 1, idx[1])
+                sub = sign / SUBSAMPLES
+                t, val = hermite_crest(sign * v[idx], sign * v[i1], d[idx] * sub, d[i1] * sub)
+                best[idx] = np.maximum(best[idx], val)
+                tloc[idx] = t
+            self._cache[sign] = (best, inner, tloc)
+        return self._cache[sign]
+
+    def loc(self, sign, j, e):
+        """Place in [0, 1] of sub-interval j's crest of sign*y in steps e (the larger sample's
+        end where the crest is not interior); sign per entry or a scalar."""
+        sign = np.broadcast_to(np.asarray(sign, float), j.shape)
+        out = np.zeros(j.shape)
+        for sg in np.unique(sign):
+            m = sign == sg
+            _, inner, tloc = self.crests(sg)
+            jm, em = j[m], e[m]
+            end = (sg * self.v[jm + 1, em] > sg * self.v[jm, em]).astype(float)
+            out[m] = np.where(inner[jm, em], tloc[jm, em], end)
+        return out
+
+    def signed_crests(self, sign):
+        """Crest values of sign*y, (S, E), for a sign per row (N,) or a scalar."""
         sign = np.asarray(sign, float)
         if sign.ndim and np.all(sign == sign.flat[0]):
             sign = sign.flat[0]
-        if sign.ndim == 0:            # one sign for every row: the cached arrays themselves
-            val, loc = (self._up if sign > 0 else self._dn)[:2]
-            if offset is not None:
-                with np.errstate(invalid="ignore"):        # -inf (steps past the horizon) - inf
-                    val = val - offset[:, None] if sign > 0 else val + offset[:, None]
-            return val, loc
-        sign = sign[:, None]
-        off = 0.0 if offset is None else offset[:, None]
-        with np.errstate(invalid="ignore"):
-            val = np.where(sign > 0, self._up[0] - off, self._dn[0] + off)
-        loc = np.where(sign > 0, self._up[1], self._dn[1])
-        return val, loc
+        if sign.ndim == 0:
+            return self.crests(sign)[0]
+        return np.where(sign[self.row] > 0, self.crests(1.0)[0], self.crests(-1.0)[0])
+
+    def per_row(self, ufunc, x):
+        """ufunc reduced over each row's steps: x (E,) -> (N,)."""
+        return ufunc.reduceat(x, self.start[:-1])
+
+    def first_last(self, hit, last=False):
+        """First (or last) step of each row where ``hit`` (E,) holds: (step (N,), any (N,));
+        rows without one get their first step."""
+        idx = np.flatnonzero(hit)
+        rows = np.arange(self.start.size - 1)
+        ri = self.row[idx]
+        if last:
+            pos = np.searchsorted(ri, rows, side="right") - 1
+            found = (pos >= 0) & (ri[np.maximum(pos, 0)] == rows) if idx.size else np.zeros(rows.size, bool)
+        else:
+            pos = np.searchsorted(ri, rows)
+            found = (pos < idx.size) & (ri[np.minimum(pos, idx.size - 1)] == rows) if idx.size else np.zeros(rows.size, bool)
+        e = np.where(found, idx[np.clip(pos, 0, max(idx.size - 1, 0))] if idx.size else 0, self.start[:-1])
+        return e, found
 
     def sample_range(self):
         """(max, min) over the horizon of the exact sub-samples, per row (computed once)."""
         if self._range is None:
-            v = self.v
-            hi, lo = v[..., 0].copy(), v[..., 0].copy()
-            for j in range(1, v.shape[-1]):           # a short last axis: slices beat a reduction
-                np.maximum(hi, v[..., j], out=hi)
-                np.minimum(lo, v[..., j], out=lo)
-            self._range = (np.where(self.valid, hi, -np.inf).max(axis=1),
-                           np.where(self.valid, lo, np.inf).min(axis=1))
+            self._range = (self.per_row(np.maximum, self.v.max(axis=0)),
+                           self.per_row(np.minimum, self.v.min(axis=0)))
         return self._range
 
     def sup(self, sign):
         """sup over the horizon of sign*y (sign (N,)): the largest exact sub-sample, and the
         PEAK_INTERVALS highest interior crests at or above it (less a slack for the cubic's
         error) refined by Newton on the exact polynomial inside their sub-interval."""
-        self._crest_cache()
-        N = self.c.shape[0]
+        N = self.start.size - 1
         sign = np.broadcast_to(np.asarray(sign, float), (N,))
         hi, lo = self.sample_range()
         best = np.where(sign > 0, hi, -lo)
-        slack = CREST_SLACK * np.maximum(np.abs(hi), np.abs(lo))
-        pos = sign > 0
-        if pos.all() or not pos.any():          # one sign for every row: the cached arrays
-            val, _, inner = self._up if pos[0] else self._dn
-        else:
-            val = np.where(pos[:, None], self._up[0], self._dn[0])
-            inner = np.where(pos[:, None], self._up[2], self._dn[2])
-        r, f = np.nonzero(inner & (val >= (best - slack)[:, None]))
-        if r.size == 0:
+        floor = best - CREST_SLACK * np.maximum(np.abs(hi), np.abs(lo))
+        found = []
+        for sg in np.unique(sign):
+            val, inner, _ = self.crests(sg)
+            bar = np.where(sign == sg, floor, np.inf)[self.row]
+            j, e = np.nonzero(inner & (val >= bar))
+            found.append((j, e, val[j, e]))
+        j, e, cv = (np.concatenate(a) for a in zip(*found))
+        if e.size == 0:
             return best
-        keep = highest_per_row(r, val[r, f], PEAK_INTERVALS)
-        r, f = r[keep], f[keep]
-        loc = np.where(pos[r], self._up[1][r, f], self._dn[1][r, f])
-        k, js = f // SUBSAMPLES, f % SUBSAMPLES
-        lo_s, hi_s = js / SUBSAMPLES, (js + 1) / SUBSAMPLES
-        s = lo_s + loc / SUBSAMPLES
-        c = self.c[r, k]
+        r = self.row[e]
+        keep = highest_per_row(r, cv, PEAK_INTERVALS)
+        j, e, r = j[keep], e[keep], r[keep]
+        sg = sign[r]
+        lo_s, hi_s = j / SUBSAMPLES, (j + 1) / SUBSAMPLES
+        s = lo_s + self.loc(sg, j, e) / SUBSAMPLES
+        c = self.c.T[e]
         dc = _deriv(c)
         ddc = _deriv(dc)
-        sg = sign[r]
         for _ in range(6):
             g, gg = sg * _horner(dc, s), sg * _horner(ddc, s)
             with np.errstate(invalid="ignore", divide="ignore"):
@@ -860,10 +870,9 @@ class _Piecewise:
         np.maximum.at(best, r, sg * _horner(c, s))
         return best
 
-    def bisect(self, k, lo, hi, fn, iters=52):
-        """Point in [lo, hi] (sigma of step k) where fn(value) changes sign (fn(lo) side kept)."""
-        rows = np.arange(self.c.shape[0])
-        c = self.c[rows, k]
+    def bisect(self, e, lo, hi, fn, iters=52):
+        """Point in [lo, hi] (sigma of steps e) where fn(value) changes sign (fn(lo) side kept)."""
+        c = self.c.T[e]
         s0 = np.sign(fn(_horner(c, lo)))
         for _ in range(iters):
             mid = 0.5 * (lo + hi)
@@ -871,27 +880,24 @@ class _Piecewise:
             lo, hi = np.where(same, mid, lo), np.where(same, hi, mid)
         return 0.5 * (lo + hi)
 
-    def integrals(self):
-        """Exact integral of y over every sub-interval, (N, K, S), in y units x seconds."""
-        return (self.c @ _IV2) * (self.h * self.valid)[:, :, None]
-
     def abs_integral(self):
-        """Integral of |y|: exact where y keeps its sign in a sub-interval (crest test); where
-        it changes sign, the sub-interval is split at its extremum and at the roots (bisection)."""
-        ints = self.integrals()
-        N, K, S = ints.shape
-        self._crest_cache()
-        hi_v, hi_l = (a.reshape(N, K, S) for a in self._up[:2])
-        lo_v, lo_l = (a.reshape(N, K, S) for a in self._dn[:2])
-        change = ~((-lo_v >= 0) | (hi_v <= 0)) & self.valid[..., None]
-        total = np.abs(ints).sum(axis=(1, 2)) - np.abs(np.where(change, ints, 0.0)).sum(axis=(1, 2))
-        n_i, k_i, j_i = np.nonzero(change)
-        if n_i.size:
-            c = self.c[n_i, k_i]
+        """Integral of |y| over the horizon, per row (y units x seconds): exact where y keeps
+        its sign in a sub-interval (crest test); where it changes sign, the sub-interval is
+        split at its extremum and at the roots (bisection)."""
+        ints = (_IV2.T @ self.c) * self.h                 # (S, E): exact integral of each sub-interval
+        S = ints.shape[0]
+        N = self.start.size - 1
+        change = (self.crests(1.0)[0] > 0) & (self.crests(-1.0)[0] > 0)     # both signs inside
+        whole = np.abs(ints)
+        whole[change] = 0.0
+        total = self.per_row(np.add, whole.sum(axis=0))
+        j_i, e_i = np.nonzero(change)
+        if e_i.size:
+            c = self.c.T[e_i]
             Fc = _antideriv(c)
             a, b = j_i / S, (j_i + 1) / S
             # extremum: the one whose crest pokes across zero
-            ext = np.where(self.v[n_i, k_i, j_i] > 0, lo_l[n_i, k_i, j_i], hi_l[n_i, k_i, j_i])
+            ext = np.where(self.v[j_i, e_i] > 0, self.loc(-1.0, j_i, e_i), self.loc(1.0, j_i, e_i))
             e = np.clip(a + ext / S, a, b)
             pts = [a]
             for u, w in ((a, e), (e, b)):
@@ -900,7 +906,7 @@ class _Piecewise:
                 pts += [r, w]
             F = [_horner(Fc, p) for p in pts]
             part = sum(np.abs(F[i + 1] - F[i]) for i in range(len(F) - 1))
-            total = total + np.bincount(n_i, part * self.h[n_i, k_i], minlength=N)
+            total = total + np.bincount(self.row[e_i], part * self.h[e_i], minlength=N)
         return total
 
 
@@ -914,42 +920,40 @@ def _bisect_poly(c, lo, hi, iters=52):
 
 
 # ------------------------------------------------------------------ metrics
-def _last_exit(pw: _Piecewise, final, band, K_rows):
+def _last_exit(pw: _Piecewise, final, band):
     """Last time |y - final| leaves the band (settling); inf if outside at the horizon."""
-    N = pw.c.shape[0]
-    rows = np.arange(N)
-    up, uloc = pw.crests(1.0, final)
-    dn, dloc = pw.crests(-1.0, final)
-    out = np.maximum(up, dn) > band[:, None]
-    any_out = out.any(axis=1)
-    f = out.shape[1] - 1 - np.argmax(out[:, ::-1], axis=1)
-    k, js = f // SUBSAMPLES, f % SUBSAMPLES
-    lo = js / SUBSAMPLES + np.where(up[rows, f] >= dn[rows, f], uloc[rows, f], dloc[rows, f]) / SUBSAMPLES
-    hi = (js + 1) / SUBSAMPLES
-    e_end = np.abs(pw.at(k, hi) - final)
-    s = pw.bisect(k, lo, np.full(N, 1.0) * hi, lambda v: np.abs(v - final) - band)
+    S = SUBSAMPLES
+    up, dn = pw.crests(1.0)[0], pw.crests(-1.0)[0]
+    f = final[pw.row]
+    out = np.maximum(up - f, dn + f) > band[pw.row]
+    e, any_out = pw.first_last(out.any(axis=0), last=True)
+    js = S - 1 - np.argmax(out[::-1, e], axis=0)
+    above = up[js, e] - final >= dn[js, e] + final
+    ext = np.where(above, pw.loc(1.0, js, e), pw.loc(-1.0, js, e))
+    lo = js / S + ext / S
+    hi = (js + 1) / S
+    e_end = np.abs(pw.at(e, hi) - final)
+    s = pw.bisect(e, lo, hi.astype(float), lambda v: np.abs(v - final) - band)
     s = np.where(e_end > band, hi, s)              # a jump at the step's end leaves the band there
-    t = pw.time(k, s)
-    at_end = (k >= K_rows - 1) & (js == SUBSAMPLES - 1) & (e_end > band)
+    t = pw.time(e, s)
+    at_end = (e == pw.start[1:] - 1) & (js == S - 1) & (e_end > band)
     return np.where(~any_out, 0.0, np.where(at_end, np.inf, t))
 
 
 def _first_reach(pw: _Piecewise, level, sign):
     """First time sign*y reaches ``level`` (inf if never)."""
-    N = pw.c.shape[0]
-    rows = np.arange(N)
-    val, loc = pw.crests(sign)
-    above = val >= level[:, None]
-    f = np.argmax(above, axis=1)
-    k, js = f // SUBSAMPLES, f % SUBSAMPLES
-    lo = js / SUBSAMPLES
-    hi_end = (js + 1) / SUBSAMPLES
-    end_ok = sign * pw.at(k, hi_end) >= level
-    hi = np.where(end_ok, hi_end, lo + loc[rows, f] / SUBSAMPLES)
-    start_ok = sign * pw.at(k, lo) >= level
-    s = pw.bisect(k, lo, hi, lambda v: sign * v - level)
+    S = SUBSAMPLES
+    above = pw.signed_crests(sign) >= level[pw.row]
+    e, hit = pw.first_last(above.any(axis=0))
+    js = np.argmax(above[:, e], axis=0)
+    lo = js / S
+    hi_end = (js + 1) / S
+    end_ok = sign * pw.at(e, hi_end) >= level
+    hi = np.where(end_ok, hi_end, lo + pw.loc(sign, js, e) / S)
+    start_ok = sign * pw.at(e, lo) >= level
+    s = pw.bisect(e, lo, hi, lambda v: sign * v - level)
     s = np.where(start_ok, lo, s)
-    return np.where(above.any(axis=1), pw.time(k, s), np.inf)
+    return np.where(hit, pw.time(e, s), np.inf)
 
 
 def _pad_group(pieces: Pieces, idx):
@@ -970,26 +974,31 @@ def _pad_group(pieces: Pieces, idx):
     return c, h, t0, valid, Ks
 
 
-def metrics_from_pieces(coef, h, t0, valid, Ks, final, band, rest=None) -> dict[str, np.ndarray]:
-    """The grouped_time_metrics keys from piecewise responses (N, K, 3, P+1) on steps of
-    lengths h starting at t0 (N, K).
+def metrics_from_pieces(coef, h, t0, counts, final, band, rest=None) -> dict[str, np.ndarray]:
+    """The grouped_time_metrics keys of N loops from their piecewise responses: coef
+    (E, 3, P+1) holds the steps of all rows one after another (``counts`` (N,) steps each,
+    in time order), of lengths h (E,) starting at t0 (E,).
 
     ``rest`` (N, 2, 3): bounds on sup |y - y(inf)| and on its integral after the last step
     (Pieces.rest). Where the steps stop short of the horizon, a peak, a settling time or the
     IAE stands only if the bound proves that the rest cannot change it (the IAE: by more than
     1e-9 relative); otherwise it is inf, not established, never an optimistic figure."""
-    pr, pd_, pu = (_Piecewise(coef[:, :, o], h, t0, valid) for o in range(3))
+    counts = np.asarray(counts, int)
+    row = np.repeat(np.arange(counts.size), counts)
+    start = np.concatenate([[0], np.cumsum(counts)])
+    cT = np.ascontiguousarray(np.transpose(coef, (1, 2, 0)))       # (3, P+1, E)
+    pr, pd_, pu = (_Piecewise(cT[o], h, t0, row, start) for o in range(3))
     yf = final[:, 0]
     sg = np.where(yf < 0, -1.0, 1.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         peak = np.maximum(pr.sup(sg), np.abs(yf))
         overshoot = np.maximum(0.0, (peak - np.abs(yf)) / np.abs(yf) * 100)
         rise = [_first_reach(pr, f * np.abs(yf), sg) for f in (0.1, 0.9)]
-        settle = _last_exit(pr, yf, band * np.abs(yf), Ks)
+        settle = _last_exit(pr, yf, band * np.abs(yf))
         ydf = final[:, 1]
         one = np.ones_like(yf)
         dpeak = np.maximum(np.maximum(pd_.sup(one), pd_.sup(-one)), np.abs(ydf))
-        dsettle = _last_exit(pd_, ydf, band * dpeak, Ks)
+        dsettle = _last_exit(pd_, ydf, band * dpeak)
         iae = np.where(np.abs(ydf) > 1e-12 * np.maximum(dpeak, 1e-300), np.inf, pd_.abs_integral())
         upeak = np.maximum(np.maximum(pu.sup(one), pu.sup(-one)), np.abs(final[:, 2]))
         if rest is not None:
@@ -1028,13 +1037,13 @@ def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     pieces = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float), starts)
     final = finals(pnum, pden, cnum, cden)
     out: dict[str, np.ndarray] = {}
-    Klen = np.array([c.shape[0] for c in pieces.coef])
-    bucket = np.ceil(np.log2(Klen)).astype(int)
-    for b in np.unique(bucket):
-        idx = np.flatnonzero(bucket == b)
-        c, h, t0, valid, Ks = _pad_group(pieces, idx)
-        for key, v in metrics_from_pieces(c, h, t0, valid, Ks, final[idx], band, pieces.rest[idx]).items():
-            out.setdefault(key, np.full(N, np.nan))[idx] = v
+    counts = np.array([c.shape[0] for c in pieces.coef])
+    # rows in chunks of about METRIC_CHUNK steps: the chunk's arrays stay in cache
+    chunk = (np.cumsum(counts) - counts) // METRIC_CHUNK
+    for rows in np.split(np.arange(N), np.flatnonzero(np.diff(chunk)) + 1):
+        cat = [np.concatenate([getattr(pieces, a)[i] for i in rows]) for a in ("coef", "h", "t0")]
+        for key, v in metrics_from_pieces(*cat, counts[rows], final[rows], band, pieces.rest[rows]).items():
+            out.setdefault(key, np.full(N, np.nan))[rows] = v
     out["horizon_cut"] = (pieces.rest != 0).any(axis=(1, 2))   # stopped short of the horizon (MAX_INTERVALS)
     return out
 

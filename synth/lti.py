@@ -63,9 +63,11 @@ def batch_polyval(p: np.ndarray, x) -> np.ndarray:
         cols = [p[:, j:j + 1] for j in range(p.shape[1])]
     else:
         cols = [p[:, j] for j in range(p.shape[1])]
-    out = np.zeros(np.broadcast_shapes(cols[0].shape, x.shape), dtype=np.result_type(p, x, float))
-    for c in cols:
-        out = out * x + c
+    out = np.empty(np.broadcast_shapes(cols[0].shape, x.shape), dtype=np.result_type(p, x, float))
+    out[...] = cols[0]
+    for c in cols[1:]:            # in place: no temporaries on large (N, K) grids
+        out *= x
+        out += c
     return out
 
 

@@ -21,6 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..lti import batch_add, batch_conv, batch_polyval, batch_roots
+from .time import highest_per_row
 
 _REAL_TOL = 1e-6      # |Im x| / (1 + |x|) below which a root in x = w^2 counts as real
 
@@ -261,9 +262,14 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
         lg = _pairs_eval(loop, wg)
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
-        # the exact response on the grid, once: every grid function below is built from these
-        ngr = at_jw(nls, grid) * np.exp(-1j * delay * grid)
-        dgr = at_jw(dls, grid)
+        # the exact response on the grid, once, from the plant's and the controller's own
+        # polynomials (half the degree of their products); every grid function below is built
+        # from these four
+        pn_g = at_jw(jw_split(np.atleast_2d(np_)), grid) * np.exp(-1j * delay * grid)
+        pd_g = at_jw(jw_split(np.atleast_2d(dp)), grid)
+        cn_g, cd_g = at_jw(jw_split(nc), grid), at_jw(jw_split(dc), grid)
+        ngr = pn_g * cn_g
+        dgr = pd_g * cd_g
         cgr = dgr + ngr
         lgr = ngr / dgr
 
@@ -293,10 +299,8 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
 
         # peaks (w = 0 included: |T(0)| = 1 with integral action, |CS(0)| = 1/P(0), ...)
         for key, num, top_grid in (("sensitivity_peak", None, dgr), ("complementary_peak", "T", ngr),
-                                   ("disturbance_gain_peak", npdc, None), ("control_gain_peak", ncdp, None)):
-            if top_grid is None:        # a numerator of its own: split once, for the grid and refinement
-                num = jw_split(num)
-                top_grid = at_jw(num, grid)
+                                   ("disturbance_gain_peak", jw_split(npdc), pn_g * cd_g),
+                                   ("control_gain_peak", jw_split(ncdp), cn_g * pd_g)):
             f = _closed_loop_mag(nls, dls, delay, num)
             pk, wpk = _grid_peak(f, grid, np.abs(top_grid / cgr))
             at0 = f(every, np.zeros(n))
@@ -365,12 +369,10 @@ def _grid_peak(f, grid, v=None, iters: int = 38):
     locmax[:, 1:-1] = (v[:, 1:-1] >= v[:, :-2]) & (v[:, 1:-1] >= v[:, 2:])
     locmax[:, 0] = v[:, 0] >= v[:, 1]
     locmax[:, -1] = v[:, -1] >= v[:, -2]
-    score = np.where(locmax, v, -np.inf)
-    m = min(PEAK_CANDIDATES, K)
-    top = np.argpartition(-score, m - 1, axis=1)[:, :m]
-    rows = np.repeat(np.arange(n), m)
-    k = top.ravel()
-    ok = np.isfinite(score[rows, k])
+    # the few highest local maxima of each row (a sparse set: no sort over the whole grid)
+    rows, k = np.nonzero(locmax & np.isfinite(v))
+    keep = highest_per_row(rows, v[rows, k], PEAK_CANDIDATES)
+    rows, k = rows[keep], k[keep]
     a = np.log(grid[rows, np.maximum(k - 1, 0)])
     b = np.log(grid[rows, np.minimum(k + 1, K - 1)])
     gr = (np.sqrt(5) - 1) / 2
@@ -385,13 +387,14 @@ def _grid_peak(f, grid, v=None, iters: int = 38):
         c, d = np.where(left, new, d), np.where(left, c, new)
         fc, fd = np.where(left, fn, fd), np.where(left, fc, fn)
     xm = 0.5 * (a + b)
-    fm = np.where(ok, f(rows, np.exp(xm)), -np.inf)
+    fm = f(rows, np.exp(xm))
     fm = np.where(np.isfinite(fm), fm, -np.inf)
-    cand_v = np.maximum(fm, np.where(ok, v[rows, k], -np.inf)).reshape(n, m)
-    cand_w = np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k]).reshape(n, m)
-    j = np.argmax(cand_v, axis=1)
-    r = np.arange(n)
-    return cand_v[r, j], cand_w[r, j]
+    cand_v = np.maximum(fm, v[rows, k])
+    cand_w = np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k])
+    best = highest_per_row(rows, cand_v, 1)             # the highest refined maximum of each row
+    peak, where = np.full(n, -np.inf), np.full(n, np.nan)
+    peak[rows[best]], where[rows[best]] = cand_v[best], cand_w[best]
+    return peak, where
 
 
 def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False, select=None):
@@ -413,7 +416,7 @@ def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False
     rows, cols = np.nonzero(ch)
     if rows.size == 0:
         return out
-    order = np.cumsum(ch, axis=1)[rows, cols] - 1
+    order = np.arange(rows.size) - np.searchsorted(rows, rows)     # place among the row's crossings
     a = np.log(grid[rows, cols])
     b = np.log(grid[rows, cols + 1])
     fa = vals[rows, cols]

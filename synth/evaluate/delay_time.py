@@ -479,8 +479,10 @@ def _march(pnum, pden, cnum, cden, theta, periods):
 @dataclass
 class Pieces:
     """Piecewise-polynomial responses of N loops: row i has steps starting at t0[i] (K_i,)
-    of lengths h[i] (K_i,), with coef[i] (K_i, 3, P+1) in local time sigma in [0, 1]."""
-    coef: list
+    of lengths h[i] (K_i,), with coef[i] (K_i, 3, P+1) in local time sigma in [0, 1], held as
+    ``coef_parts[i]``, the list of its pieces in time order (method of steps, residue tail):
+    the metrics join many rows' parts in one copy instead of joining each row first."""
+    coef_parts: list
     h: list
     t0: list
     m: np.ndarray              # steps per dead time of the method of steps
@@ -488,6 +490,10 @@ class Pieces:
     tail: np.ndarray           # True where the residue tail took over after the head
     rest: np.ndarray           # (N, 2, 3) bounds on sup |y - y(inf)| and its integral after the last
                                # step (0: the horizon was reached; inf: cut, no bound)
+
+    @property
+    def coef(self) -> list:
+        return [p[0] if len(p) == 1 else np.concatenate(p) for p in self.coef_parts]
 
 
 def _starts_of(h: np.ndarray) -> np.ndarray:
@@ -512,6 +518,7 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     head = np.maximum(np.ceil(HEAD_STEPS / L0), HEAD_DELAYS)
     use_tail = (full > head) if starts is not None else np.zeros(N, bool)
     coefs, h_list, m, trunc = _march(pnum, pden, cnum, cden, theta, np.where(use_tail, head, full))
+    coefs = [[c] for c in coefs]
     t_list = [_starts_of(h) for h in h_list]
     tail_ok = np.zeros(N, bool)
     rest = np.zeros((N, 2, 3))
@@ -520,11 +527,11 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
         if idx.size == 0:
             break
         ok, tc, th, tt, rb = _tail(pnum, pden, cnum[idx], cden[idx], theta, np.asarray(starts)[idx],
-                                   [coefs[i] for i in idx], [h_list[i] for i in idx], m[idx], horizon[idx],
+                                   [coefs[i][0] for i in idx], [h_list[i] for i in idx], m[idx], horizon[idx],
                                    chain=attempt > 0)
         for j, i in enumerate(idx):
             if ok[j]:
-                coefs[i] = np.concatenate([coefs[i], tc[j]])
+                coefs[i] = [coefs[i][0], tc[j]]
                 h_list[i] = np.concatenate([h_list[i], th[j]])
                 t_list[i] = np.concatenate([t_list[i], tt[j]])
                 rest[i] = rb[j]
@@ -538,7 +545,7 @@ def piecewise(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
             if rows.size:
                 c2, h2, m2, tr2 = _march(pnum, pden, cnum[rows], cden[rows], theta, periods[rows])
                 for j, i in enumerate(rows):
-                    coefs[i], h_list[i], t_list[i] = c2[j], h2[j], _starts_of(h2[j])
+                    coefs[i], h_list[i], t_list[i] = [c2[j]], h2[j], _starts_of(h2[j])
                 m[rows], trunc[rows] = m2, tr2
     # method of steps cut at MAX_INTERVALS before the horizon: no bound on the rest
     capped = np.array([h.size >= MAX_INTERVALS and t[-1] + h[-1] < hz for t, h, hz in zip(t_list, h_list, horizon)])
@@ -959,15 +966,16 @@ def _first_reach(pw: _Piecewise, level, sign):
 def _pad_group(pieces: Pieces, idx):
     """Rows ``idx`` of ``pieces`` padded to a common number of steps: coef (n, K, 3, P+1),
     h and t0 (n, K) (padded steps: zero length at the row's end), valid (n, K), K_i (n,)."""
-    K = max(pieces.coef[i].shape[0] for i in idx)
+    coef = pieces.coef
+    K = max(coef[i].shape[0] for i in idx)
     n = len(idx)
-    c = np.zeros((n, K) + pieces.coef[idx[0]].shape[1:])
+    c = np.zeros((n, K) + coef[idx[0]].shape[1:])
     h, t0 = np.zeros((n, K)), np.zeros((n, K))
     valid = np.zeros((n, K), bool)
     Ks = np.zeros(n, int)
     for j, i in enumerate(idx):
-        k = pieces.coef[i].shape[0]
-        c[j, :k], h[j, :k], t0[j, :k] = pieces.coef[i], pieces.h[i], pieces.t0[i]
+        k = coef[i].shape[0]
+        c[j, :k], h[j, :k], t0[j, :k] = coef[i], pieces.h[i], pieces.t0[i]
         t0[j, k:] = pieces.t0[i][-1] + pieces.h[i][-1]
         valid[j, :k] = True
         Ks[j] = k
@@ -1037,11 +1045,12 @@ def delay_time_metrics(pnum, pden, cnum, cden, theta: float, decay: np.ndarray,
     pieces = piecewise(pnum, pden, cnum, cden, theta, np.asarray(decay, float), starts)
     final = finals(pnum, pden, cnum, cden)
     out: dict[str, np.ndarray] = {}
-    counts = np.array([c.shape[0] for c in pieces.coef])
+    counts = np.array([h.size for h in pieces.h])
     # rows in chunks of about METRIC_CHUNK steps: the chunk's arrays stay in cache
     chunk = (np.cumsum(counts) - counts) // METRIC_CHUNK
     for rows in np.split(np.arange(N), np.flatnonzero(np.diff(chunk)) + 1):
-        cat = [np.concatenate([getattr(pieces, a)[i] for i in rows]) for a in ("coef", "h", "t0")]
+        cat = [np.concatenate([c for i in rows for c in pieces.coef_parts[i]])] + \
+            [np.concatenate([getattr(pieces, a)[i] for i in rows]) for a in ("h", "t0")]
         for key, v in metrics_from_pieces(*cat, counts[rows], final[rows], band, pieces.rest[rows]).items():
             out.setdefault(key, np.full(N, np.nan))[rows] = v
     out["horizon_cut"] = (pieces.rest != 0).any(axis=(1, 2))   # stopped short of the horizon (MAX_INTERVALS)

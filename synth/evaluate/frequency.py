@@ -353,6 +353,8 @@ def _closed_loop_mag(nls, dls, delay, which):
 
 PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
 PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
+ILLINOIS_STEPS = 10   # Illinois steps per crossing before bisection finishes the wide brackets
+CROSSING_TOL = 4e-15  # bracket width in ln w (relative in w) at which a crossing is located
 
 
 def _grid_peak(f, grid, v=None, iters: int = 38):
@@ -398,11 +400,14 @@ def _grid_peak(f, grid, v=None, iters: int = 38):
 
 
 def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False, select=None):
-    """Sign changes of ``vals`` along each grid row, refined by bisection on fun(rows, w).
+    """Sign changes of ``vals`` along each grid row, refined on fun(rows, w) in ln w.
 
     All (candidate, interval) pairs are refined together (only those in ``select`` when
-    given). Returns an (N, M) NaN-padded array of crossing frequencies; 48 halvings of a
-    grid interval reach the spacing of doubles in ln w.
+    given): ILLINOIS_STEPS of the Illinois method (regula falsi that halves the stale end's
+    value; superlinear, and the root stays bracketed; Dowell & Jarratt, BIT 11, 1971), then
+    bisection of the brackets still wider than CROSSING_TOL, at most ``iters`` halvings (48
+    halvings of a grid interval reach the spacing of doubles in ln w). Returns an (N, M)
+    NaN-padded array of crossing frequencies.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
@@ -419,13 +424,28 @@ def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False
     order = np.arange(rows.size) - np.searchsorted(rows, rows)     # place among the row's crossings
     a = np.log(grid[rows, cols])
     b = np.log(grid[rows, cols + 1])
-    fa = vals[rows, cols]
+    fa, fb = vals[rows, cols], vals[rows, cols + 1]
+    for _ in range(ILLINOIS_STEPS):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = b - fb * (b - a) / (fb - fa)
+        lo, hi = np.minimum(a, b), np.maximum(a, b)
+        x = np.where((x > lo) & (x < hi), x, 0.5 * (a + b))       # a secant outside: bisect
+        fx = fun(rows, np.exp(x))
+        flip = np.sign(fx) != np.sign(fb)                         # the root lies between x and b
+        a, fa = np.where(flip, b, a), np.where(flip, fb, 0.5 * fa)
+        b, fb = x, fx
+        exact = fx == 0
+        a, fa = np.where(exact, x, a), np.where(exact, 0.0, fa)
+    todo = np.flatnonzero(np.abs(b - a) > CROSSING_TOL)
     for _ in range(iters):
-        mid = 0.5 * (a + b)
-        fm = fun(rows, np.exp(mid))
-        same = np.sign(fm) == np.sign(fa)
-        a = np.where(same, mid, a)
-        fa = np.where(same, fm, fa)
-        b = np.where(same, b, mid)
+        if todo.size == 0:
+            break
+        mid = 0.5 * (a[todo] + b[todo])
+        fm = fun(rows[todo], np.exp(mid))
+        same = np.sign(fm) == np.sign(fb[todo])
+        b[todo] = np.where(same, mid, b[todo])
+        fb[todo] = np.where(same, fm, fb[todo])
+        a[todo] = np.where(same, a[todo], mid)
+        todo = todo[np.abs(b[todo] - a[todo]) > CROSSING_TOL]
     out[rows, order] = np.exp(0.5 * (a + b))
     return out

@@ -276,18 +276,26 @@ def _simulate_group(pnum, pden, cnum, cden, hd, G, L, K):
     coef = np.empty((N, K, 3, q))
     tail = np.zeros(N)
     scale = np.zeros(N)
+    # Taylor coefficients (power basis) of y and u and v's cut-off terms, both cases, for all
+    # the steps of one length in one product per row: (2k, d) @ (d, 2(P+3) + 2)
+    q2 = q + 2
     for dd in range(D):
         ks = np.flatnonzero(kpos == dd)
         if ks.size == 0:
             continue
-        Zs = Z[:, ks]                                               # (N, k, d, 2)
-        for o, (row, c) in enumerate(((0, 0), (0, 1), (1, 0))):
-            full = (Zs[..., c] @ np.swapaxes(R[:, dd, row], 1, 2)) / _FACT[None, None, :]   # power basis
-            coef[:, ks, o] = full[..., :q]
-            tail = np.maximum(tail, np.max(np.abs(full[..., q]) + np.abs(full[..., q + 1]), axis=1))
-            scale = np.maximum(scale, np.max(np.abs(full[..., 0]), axis=1))
-        vt = (Zs[..., 1] @ np.swapaxes(R[:, dd, 2, q:], 1, 2)) / _FACT[None, None, q:]   # v's cut-off, load case
-        tail = np.maximum(tail, np.max(np.abs(vt).sum(axis=2), axis=1))
+        k = ks.size
+        Zs = np.ascontiguousarray(Z[:, ks].swapaxes(2, 3)).reshape(N, 2 * k, d)     # (N, k x case, d)
+        maps = np.concatenate([R[:, dd, 0] / _FACT[:, None], R[:, dd, 1] / _FACT[:, None],
+                               R[:, dd, 2, q:] / _FACT[q:, None]], axis=1)        # (N, 2 q2 + 2, d)
+        full = (Zs @ np.swapaxes(maps, 1, 2)).reshape(N, k, 2, 2 * q2 + 2)
+        y, u = full[..., :q2], full[:, :, 0, q2:2 * q2]
+        coef[:, ks, :2] = y[..., :q]
+        coef[:, ks, 2] = u[..., :q]
+        cut = np.maximum((np.abs(y[..., q]) + np.abs(y[..., q + 1])).max(axis=(1, 2)),
+                         (np.abs(u[..., q]) + np.abs(u[..., q + 1])).max(axis=1))
+        vt = np.abs(full[:, :, 1, 2 * q2:]).sum(axis=2).max(axis=1)                 # v's cut-off, load case
+        tail = np.maximum(tail, np.maximum(cut, vt))
+        scale = np.maximum(scale, np.maximum(np.abs(y[..., 0]).max(axis=(1, 2)), np.abs(u[..., 0]).max(axis=1)))
     return coef, tail / np.maximum(scale, 1e-300), hd[np.arange(N)[:, None], kpos[None, :]]
 
 

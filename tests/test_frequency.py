@@ -444,3 +444,49 @@ def test_at_jw_matches_complex_horner(coefs, w):
     ref = np.polyval(p[0], 1j * w)
     scale_ = np.polyval(np.abs(p[0]), w)            # sum |c_k| w^k bounds the rounding
     assert abs(got - ref) <= 1e-13 * max(scale_, 1e-300)
+
+
+@given(st.lists(st.tuples(st.floats(0.2, 3.0), st.floats(-2.0, 2.0), st.floats(0.05, 1.0)), min_size=1, max_size=4),
+       st.floats(-1.0, 1.0))
+@settings(max_examples=100, deadline=None)
+def test_brent_minimize_agrees_with_scipy_bounded(bumps, x0):
+    """Batched Brent minimisation (frequency.brent_minimize) of sums of Gaussian wells on [-3, 3]
+    reaches a value no worse than scipy.optimize.minimize_scalar(method="bounded") started from
+    the same bracket (an independent implementation of the same published method: Brent,
+    *Algorithms for Minimization without Derivatives*, 1973), when both converge to one well."""
+    from scipy.optimize import minimize_scalar
+    from synth.evaluate.frequency import brent_minimize
+
+    def fun(x):
+        return -sum(h * np.exp(-((x - c) / s) ** 2) for h, c, s in bumps)
+    # a bracket around the sampled minimum of a fine grid, as _grid_peak uses it
+    grid = np.linspace(-3.0, 3.0, 601)
+    k = int(np.clip(np.argmin(fun(grid)), 1, 599))
+    a, x, b = grid[k - 1], grid[k], grid[k + 1]
+    got_x, got_f = brent_minimize(lambda idx, u: fun(u), np.array([a]), np.array([x]), np.array([b]),
+                                  np.array([fun(x)]), 1e-10)
+    ref = minimize_scalar(fun, bounds=(a, b), method="bounded", options={"xatol": 1e-12})
+    assert a <= got_x[0] <= b
+    assert got_f[0] == pytest.approx(fun(got_x[0]), abs=0.0)            # the value is F at the returned point
+    assert got_f[0] <= ref.fun + 1e-12 * max(1.0, abs(ref.fun))
+    assert got_f[0] <= fun(x)                                         # never worse than the start
+
+
+@given(st.floats(0.05, 20.0), st.floats(0.0, 3.0), st.integers(1, 4))
+@settings(max_examples=100, deadline=None)
+def test_illinois_crossings_agree_with_brentq(w1, phase, power):
+    """Sign changes of g(w) = cos(w/w1 + phase) w^power on a logarithmic grid, refined by the
+    Illinois method with a bisection finish (frequency._bisect_crossings), match
+    scipy.optimize.brentq on every bracketing grid interval to 1e-13 relative."""
+    from scipy.optimize import brentq
+    from synth.evaluate.frequency import _bisect_crossings
+
+    def g(w):
+        return np.cos(w / w1 + phase) * w ** power
+    grid = np.geomspace(1e-3, 20.0 * w1, 400)[None, :]      # spacing below a quarter period: one root per interval
+    vals = g(grid)
+    got = _bisect_crossings(lambda rows, w: g(w), grid, vals)[0]
+    idx = np.flatnonzero(np.sign(vals[0, :-1]) * np.sign(vals[0, 1:]) < 0)
+    assume(idx.size > 0)
+    ref = np.array([brentq(g, grid[0, i], grid[0, i + 1], xtol=1e-300, rtol=4 * np.finfo(float).eps) for i in idx])
+    np.testing.assert_allclose(got[:idx.size], ref, rtol=1e-13)

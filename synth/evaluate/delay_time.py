@@ -112,6 +112,7 @@ _FACT = np.array([float(factorial(i)) for i in range(DEGREE + 3)])
 # power-basis change: sum_i c_i (sigma - 1/2)^i = sum_j (c @ _FROM_MID)_j sigma^j
 _FROM_MID = np.array([[comb(i, j) * (-0.5) ** (i - j) if j <= i else 0.0 for j in range(DEGREE + 1)]
                       for i in range(DEGREE + 1)])
+_FROM_MID_F = _FROM_MID / _FACT[:DEGREE + 1, None]     # Taylor terms c_i / i! first, then the basis change
 
 
 @dataclass
@@ -677,7 +678,7 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
     first = np.repeat(np.cumsum(n_s) - n_s, n_s)
     t_e = np.repeat(np.concatenate(seg_t), n_s) + h_e * (np.arange(n_s.sum()) - first)
     al_e = np.repeat(np.concatenate(seg_alive), n_s, axis=0)
-    order = np.lexsort((t_e, rows_e))
+    order = np.argsort(rows_e, kind="stable")    # each segment pass is in row order, passes in time order
     rows_e, h_e, t_e, al_e = rows_e[order], h_e[order], t_e[order], al_e[order]
     P = DEGREE
     coef = np.empty((rows_e.size, 3, P + 1))
@@ -694,7 +695,7 @@ def _tail(pnum, pden, cnum, cden, theta, starts, head, head_h, m, horizon, chain
             sh = se * h_e[c, None]
             for i in range(1, P + 1):
                 w[i] = w[i - 1] * sh
-            coef[c] = ((res[rows_e[c], :, :k] @ w.transpose(1, 2, 0)).real / _FACT[:P + 1]) @ _FROM_MID
+            coef[c] = (res[rows_e[c], :, :k] @ w.transpose(1, 2, 0)).real @ _FROM_MID_F
     coef[..., 0] += fin[rows_e]
     cuts = np.searchsorted(rows_e, np.arange(N + 1))
     cl = [coef[cuts[i]:cuts[i + 1]] for i in range(N)]

@@ -7,8 +7,8 @@ peak of |A/B| over w is at x = 0, x -> inf or a positive root of A'B - AB'.
 
 Loops with dead time: gain crossovers are polynomial roots as above (|e^{-jw theta}| = 1);
 the rest is evaluated on the exact frequency response (phase -w*theta) on a dense
-logarithmic grid, every extremum or crossing refined by batched golden-section search
-or bisection on the exact response (no loop per candidate). Their stability verdict
+logarithmic grid, every extremum refined by batched Brent steps and every crossing by
+Illinois steps on the exact response (no loop per candidate). Their stability verdict
 is the crossing count of synth.evaluate.delay, not a frequency-domain test.
 
 All polynomials are first rescaled to s = w0 * s_hat, with w0 the geometric mean
@@ -234,10 +234,14 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
     roots, no grid; ``crossings`` from :func:`synth.evaluate.delay.crossings` when already
     computed). Phase crossovers, peaks and the bandwidth come from a grid of ``points``
     logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate plus w = 0: the largest few
-    local maxima of each peak function are refined by golden-section search and every
-    crossing by bisection, all candidates together, on the exact response.
+    local maxima of each peak function are refined by Brent's method and every crossing by the
+    Illinois method, all candidates together, on the exact response.
     The stability verdict is not made here (see :mod:`synth.evaluate.delay`).
     """
+    if crossings is None:
+        from .delay import crossings as _crossings, split
+        crossings = _crossings(*split(np_, dp, nc, dc))
+    wg = crossings.w
     n = nc.shape[0]
     nl = batch_conv(nc, np_)
     dl = batch_conv(dc, dp)
@@ -252,13 +256,9 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
     def loop(rows, w):
         return at_jw(_rows_of(nls, rows), w) * np.exp(-1j * delay * w) / at_jw(_rows_of(dls, rows), w)
 
-    if crossings is None:
-        from .delay import crossings as _crossings, split
-        crossings = _crossings(*split(np_, dp, nc, dc))
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         out = {}
         # gain crossovers: |L(jw)| = 1 exactly where |A|^2 = |B|^2
-        wg = crossings.w
         lg = _pairs_eval(loop, wg)
         out.update(_margins_from_crossovers(wg, lg, np.ones(n)))
 
@@ -357,12 +357,12 @@ ILLINOIS_STEPS = 10   # Illinois steps per crossing before bisection finishes th
 CROSSING_TOL = 4e-15  # bracket width in ln w (relative in w) at which a crossing is located
 
 
-def _grid_peak(f, grid, v=None, iters: int = 38):
-    """Max of f(rows, w) over the grid: the largest few local maxima each refined by
-    golden-section search in log-frequency (several near-equal maxima occur with dead time).
-    ``v`` are the grid values when already known. 38 steps shrink a grid interval (0.035 in
-    ln w at 1,200 points) to 1e-9: the frequency to 1e-9 relative, the peak (quadratic in the
-    error) to about 1e-12 relative even for a resonance with Q = 1,000."""
+def _grid_peak(f, grid, v=None, tol: float = 3e-9):
+    """Max of f(rows, w) over the grid: the largest few local maxima each refined by Brent's
+    method in ln w on the two grid intervals around them (several near-equal maxima occur with
+    dead time). ``v`` are the grid values when already known. The maxima are located to
+    ``tol`` in ln w (relative in w), the peak (quadratic in the error) to about 1e-12 relative
+    even for a resonance with Q = 1,000."""
     n, K = grid.shape
     if v is None:
         v = f(np.repeat(np.arange(n), K), grid.ravel()).reshape(n, K)
@@ -375,28 +375,73 @@ def _grid_peak(f, grid, v=None, iters: int = 38):
     rows, k = np.nonzero(locmax & np.isfinite(v))
     keep = highest_per_row(rows, v[rows, k], PEAK_CANDIDATES)
     rows, k = rows[keep], k[keep]
+    lg = np.log(grid[rows, k])
     a = np.log(grid[rows, np.maximum(k - 1, 0)])
     b = np.log(grid[rows, np.minimum(k + 1, K - 1)])
-    gr = (np.sqrt(5) - 1) / 2
-    c, d = b - gr * (b - a), a + gr * (b - a)
-    fc, fd = f(rows, np.exp(c)), f(rows, np.exp(d))
-    for _ in range(iters):     # one new evaluation per step: the kept inner point is reused
-        left = fc > fd
-        b = np.where(left, d, b)
-        a = np.where(left, a, c)
-        new = np.where(left, b - gr * (b - a), a + gr * (b - a))
-        fn = f(rows, np.exp(new))
-        c, d = np.where(left, new, d), np.where(left, c, new)
-        fc, fd = np.where(left, fn, fd), np.where(left, fc, fn)
-    xm = 0.5 * (a + b)
-    fm = f(rows, np.exp(xm))
-    fm = np.where(np.isfinite(fm), fm, -np.inf)
-    cand_v = np.maximum(fm, v[rows, k])
-    cand_w = np.where(fm >= v[rows, k], np.exp(xm), grid[rows, k])
-    best = highest_per_row(rows, cand_v, 1)             # the highest refined maximum of each row
+
+    def neg(idx, x):
+        fx = f(rows[idx], np.exp(x))
+        return np.where(np.isfinite(fx), -fx, np.inf)
+    x, fx = brent_minimize(neg, a, lg, b, -v[rows, k], tol)
     peak, where = np.full(n, -np.inf), np.full(n, np.nan)
-    peak[rows[best]], where[rows[best]] = cand_v[best], cand_w[best]
+    best = highest_per_row(rows, -fx, 1)                # the highest refined maximum of each row
+    peak[rows[best]], where[rows[best]] = -fx[best], np.exp(x[best])
     return peak, where
+
+
+_CGOLD = 0.5 * (3.0 - np.sqrt(5.0))
+
+
+def brent_minimize(F, a, x, b, fx, tol, iters: int = 60):
+    """Minimum of F(idx, x) (the function of entries idx at points x) inside brackets [a, b]
+    (arrays, all entries together) from interior points x with known values fx: Brent's method (parabolic steps through the three best points,
+    golden-section steps where a parabola is not trusted; R. P. Brent, *Algorithms for
+    Minimization without Derivatives*, 1973, ch. 5), one batched evaluation of F per step.
+    An entry stops once its bracket is within about 4 ``tol`` (absolute in x). Returns (x, F(x))."""
+    a, b, x, fx = (np.array(z, float) for z in (a, b, x, fx))
+    w, v, fw, fv = x.copy(), x.copy(), fx.copy(), fx.copy()
+    d = np.zeros_like(x)
+    e = np.zeros_like(x)
+    act = np.arange(x.size)
+    for _ in range(iters):
+        m = 0.5 * (a + b)
+        tol2 = 2 * tol
+        act = act[np.abs(x[act] - m[act]) > tol2 - 0.5 * (b[act] - a[act])]
+        if act.size == 0:
+            break
+        A, B, X, W, V = a[act], b[act], x[act], w[act], v[act]
+        FX, FW, FV, D, Ee, M = fx[act], fw[act], fv[act], d[act], e[act], m[act]
+        with np.errstate(invalid="ignore", over="ignore"):
+            r = (X - W) * (FX - FV)
+            q = (X - V) * (FX - FW)
+            p = (X - V) * q - (X - W) * r
+            q = 2 * (q - r)
+            p = np.where(q > 0, -p, p)
+            q = np.abs(q)
+            para = (np.abs(Ee) > tol) & (np.abs(p) < np.abs(0.5 * q * Ee)) & (p > q * (A - X)) & (p < q * (B - X))
+            dp = np.where(para, p / np.where(q != 0, q, 1.0), 0.0)
+        u = X + dp
+        near_end = para & ((u - A < tol2) | (B - u < tol2))
+        dp = np.where(near_end, np.where(M >= X, tol, -tol), dp)
+        eg = np.where(X >= M, A - X, B - X)                  # golden section into the larger part
+        e_new = np.where(para, D, eg)
+        d_new = np.where(para, dp, _CGOLD * eg)
+        u = X + np.where(np.abs(d_new) >= tol, d_new, np.where(d_new >= 0, tol, -tol))
+        fu = F(act, u)
+        better = fu <= FX
+        A2 = np.where(better, np.where(u >= X, X, A), np.where(u < X, u, A))
+        B2 = np.where(better, np.where(u >= X, B, X), np.where(u < X, B, u))
+        to_w = ~better & ((fu <= FW) | (W == X))
+        to_v = ~better & ~to_w & ((fu <= FV) | (V == X) | (V == W))
+        a[act], b[act] = A2, B2
+        v[act] = np.where(better | to_w, W, np.where(to_v, u, V))
+        fv[act] = np.where(better | to_w, FW, np.where(to_v, fu, FV))
+        w[act] = np.where(better, X, np.where(to_w, u, W))
+        fw[act] = np.where(better, FX, np.where(to_w, fu, FW))
+        x[act] = np.where(better, u, X)
+        fx[act] = np.where(better, fu, FX)
+        d[act], e[act] = d_new, e_new
+    return x, fx
 
 
 def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False, select=None):

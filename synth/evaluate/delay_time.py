@@ -104,6 +104,7 @@ TAIL_TOL = 1e-10         # largest accepted head/tail mismatch on the head's las
 ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leaves the tail
 TAIL_CHUNK = 4096         # tail steps whose coefficients are formed in one batch
 METRIC_CHUNK = 1 << 15    # steps whose metrics are computed in one batch (rows kept whole)
+SIM_CHUNK = 1 << 14       # rows x steps of the method of steps simulated in one batch
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
 TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the expansion does not match it
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
@@ -466,18 +467,20 @@ def _march(pnum, pden, cnum, cden, theta, periods):
         key = np.stack([G, L, np.ceil(np.log2(K)).astype(int), deg[todo]], axis=1)
         keys, inv = np.unique(key, axis=0, return_inverse=True)
         for g in range(keys.shape[0]):
-            here = inv.ravel() == g
-            sel = todo[here]
-            Kg = int(K[here].max())
+            members = np.flatnonzero(inv.ravel() == g)
+            Kg = int(K[members].max())
             Gg, Lg, dg = int(keys[g, 0]), int(keys[g, 1]), int(keys[g, 3])
-            cd = cden[sel][:, cden.shape[1] - 1 - dg:]
-            cn = cnum[sel][:, -(dg + 1):] if cnum.shape[1] >= dg + 1 else cnum[sel]
-            if np.any(cnum[sel][:, :max(cnum.shape[1] - dg - 1, 0)] != 0):
-                raise ValueError("improper controller: numerator degree above the denominator's")
-            c, tr, hk = _simulate_group(pnum, pden, cn, cd, hd[here][:, :Gg + 1], Gg, Lg, Kg)
-            for j, i in enumerate(sel):
-                coefs[i], hs[i] = c[j], hk[j]
-            trunc[sel], per[sel] = tr, Lg
+            # at most SIM_CHUNK steps x rows at a time: arrays of a few MB, reused by the allocator
+            for here in np.array_split(members, -(-members.size * Kg // SIM_CHUNK)):
+                sel = todo[here]
+                cd = cden[sel][:, cden.shape[1] - 1 - dg:]
+                cn = cnum[sel][:, -(dg + 1):] if cnum.shape[1] >= dg + 1 else cnum[sel]
+                if np.any(cnum[sel][:, :max(cnum.shape[1] - dg - 1, 0)] != 0):
+                    raise ValueError("improper controller: numerator degree above the denominator's")
+                c, tr, hk = _simulate_group(pnum, pden, cn, cd, hd[here][:, :Gg + 1], Gg, Lg, Kg)
+                for j, i in enumerate(sel):
+                    coefs[i], hs[i] = c[j], hk[j]
+                trunc[sel], per[sel] = tr, Lg
         bad = todo[trunc[todo] > TRUNCATION_TOL]
         if attempt < MAX_REFINE:
             level[bad] += 1

@@ -235,13 +235,21 @@ def delay_metrics(np_, dp, nc: np.ndarray, dc: np.ndarray, delay: float, w0: np.
     computed). Phase crossovers, peaks and the bandwidth come from a grid of ``points``
     logarithmic frequencies from 1e-5 w0 to 1e4 w0 per candidate plus w = 0: the largest few
     local maxima of each peak function are refined by Brent's method and every crossing by the
-    Illinois method, all candidates together, on the exact response.
+    Illinois method, all candidates of a chunk together, on the exact response. Candidates go
+    FREQ_CHUNK at a time: each grid array then stays a few MB, reused by the allocator, where
+    the whole batch's (tens of MB each) would be mapped afresh, page by page, every time.
     The stability verdict is not made here (see :mod:`synth.evaluate.delay`).
     """
     if crossings is None:
         from .delay import crossings as _crossings, split
         crossings = _crossings(*split(np_, dp, nc, dc))
-    wg = crossings.w
+    parts = [_delay_metrics_rows(np_, dp, nc[s], dc[s], delay, w0[s], crossings.w[s], points)
+             for s in (slice(i, i + FREQ_CHUNK) for i in range(0, nc.shape[0], FREQ_CHUNK))]
+    return {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+
+
+def _delay_metrics_rows(np_, dp, nc, dc, delay, w0, wg, points):
+    """delay_metrics for one chunk of candidates, gain crossovers ``wg`` given."""
     n = nc.shape[0]
     nl = batch_conv(nc, np_)
     dl = batch_conv(dc, dp)
@@ -353,6 +361,7 @@ def _closed_loop_mag(nls, dls, delay, which):
 
 PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
 PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
+FREQ_CHUNK = 512      # candidates per pass of the dead-time frequency metrics
 ILLINOIS_STEPS = 10   # Illinois steps per crossing before bisection finishes the wide brackets
 CROSSING_TOL = 4e-15  # bracket width in ln w (relative in w) at which a crossing is located
 

@@ -450,12 +450,12 @@ def test_at_jw_matches_complex_horner(coefs, w):
        st.floats(-1.0, 1.0))
 @settings(max_examples=100, deadline=None)
 def test_brent_minimize_agrees_with_scipy_bounded(bumps, x0):
-    """Batched Brent minimisation (frequency.brent_minimize) of sums of Gaussian wells on [-3, 3]
+    """Batched Brent minimisation (bracket.brent_minimize) of sums of Gaussian wells on [-3, 3]
     reaches a value no worse than scipy.optimize.minimize_scalar(method="bounded") started from
     the same bracket (an independent implementation of the same published method: Brent,
     *Algorithms for Minimization without Derivatives*, 1973), when both converge to one well."""
     from scipy.optimize import minimize_scalar
-    from synth.evaluate.frequency import brent_minimize
+    from synth.evaluate.bracket import brent_minimize
 
     def fun(x):
         return -sum(h * np.exp(-((x - c) / s) ** 2) for h, c, s in bumps)

@@ -68,8 +68,8 @@ come from the expansion itself, not from the step before.
 
 Metrics use the same definitions as synth.evaluate.time (grouped_time_metrics keys).
 Each interval's response is a polynomial known to rounding, so peaks (Newton on the
-derivative), threshold crossings (bisection) and integrals (antiderivative; sign
-changes located by bisection) are exact up to rounding and the polynomial cut-off;
+derivative), threshold crossings (bracketed Illinois steps) and integrals (antiderivative;
+sign changes located the same way) are exact up to rounding and the polynomial cut-off;
 candidate intervals are located with cubic crests on SUBSAMPLES exact sub-samples.
 The horizon is HORIZON_DECAYS / decay rate (20 decays, against 14 for rational loops, so
 that the integral's tail stays below ~1e-8 relative).
@@ -83,6 +83,7 @@ from math import comb, factorial
 import numpy as np
 
 from ..lti import batch_conv, batch_polyval, batch_roots
+from .bracket import illinois_root
 from .time import CREST_SLACK, batched_expm, hermite_crest, highest_per_row
 
 HORIZON_DECAYS = 20.0     # horizon = this / decay rate: the IAE tail beyond it is ~e^-20 (2e-9) relative
@@ -105,6 +106,7 @@ ALIVE_TOL = 1e-14        # a root's term below this (relative to the peak) leave
 TAIL_CHUNK = 4096         # tail steps whose coefficients are formed in one batch
 METRIC_CHUNK = 1 << 15    # steps whose metrics are computed in one batch (rows kept whole)
 SIM_CHUNK = 1 << 14       # rows x steps of the method of steps simulated in one batch
+SIGMA_TOL = 1e-15         # crossings located to this in local time (fraction of a step)
 TAIL_STEPS = 32          # tail steps per segment at least (the step is re-chosen per segment)
 TAIL_RETRIES = 2         # times the head is made longer (2x, then 4x) when the expansion does not match it
 CHAIN_ROOTS = 16         # Newton also starts on the first CHAIN_ROOTS points of the root chains
@@ -889,20 +891,15 @@ class _Piecewise:
         np.maximum.at(best, r, sg * _horner(c, s))
         return best
 
-    def bisect(self, e, lo, hi, fn, iters=52):
-        """Point in [lo, hi] (sigma of steps e) where fn(value) changes sign (fn(lo) side kept)."""
-        c = self.c.T[e]
-        s0 = np.sign(fn(_horner(c, lo)))
-        for _ in range(iters):
-            mid = 0.5 * (lo + hi)
-            same = np.sign(fn(_horner(c, mid))) == s0
-            lo, hi = np.where(same, mid, lo), np.where(same, hi, mid)
-        return 0.5 * (lo + hi)
+    def sign_change(self, e, lo, hi, fn):
+        """Point in [lo, hi] (sigma of steps e) where fn(i, value) changes sign (i: the entries
+        asked for); hi where it has one sign at both ends."""
+        return _sign_change(self.c.T[e], lo, hi, fn)
 
     def abs_integral(self):
         """Integral of |y| over the horizon, per row (y units x seconds): exact where y keeps
         its sign in a sub-interval (crest test); where it changes sign, the sub-interval is
-        split at its extremum and at the roots (bisection)."""
+        split at its extremum and at the roots (bracketed Illinois steps)."""
         ints = (_IV2.T @ self.c) * self.h                 # (S, E): exact integral of each sub-interval
         S = ints.shape[0]
         N = self.start.size - 1
@@ -921,7 +918,7 @@ class _Piecewise:
             pts = [a]
             for u, w in ((a, e), (e, b)):
                 fu, fw = _horner(c, u), _horner(c, w)
-                r = np.where(np.sign(fu) != np.sign(fw), _bisect_poly(c, u, w), w)
+                r = np.where(np.sign(fu) != np.sign(fw), _sign_change(c, u, w), w)
                 pts += [r, w]
             F = [_horner(Fc, p) for p in pts]
             part = sum(np.abs(F[i + 1] - F[i]) for i in range(len(F) - 1))
@@ -929,13 +926,18 @@ class _Piecewise:
         return total
 
 
-def _bisect_poly(c, lo, hi, iters=52):
-    s0 = np.sign(_horner(c, lo))
-    for _ in range(iters):
-        mid = 0.5 * (lo + hi)
-        same = np.sign(_horner(c, mid)) == s0
-        lo, hi = np.where(same, mid, lo), np.where(same, hi, mid)
-    return 0.5 * (lo + hi)
+def _sign_change(c, lo, hi, fn=None):
+    """Sign change of fn(i, y) (default y itself) of polynomials c (n, P+1) in local time
+    [lo, hi], by bracketed Illinois steps (:func:`synth.evaluate.bracket.illinois_root`) to
+    SIGMA_TOL; hi where fn has one sign at both ends."""
+    lo, hi = np.broadcast_to(lo, (c.shape[0],)).astype(float), np.broadcast_to(hi, (c.shape[0],)).astype(float)
+    if fn is None:
+        def fn(i, y):
+            return y
+    every = np.arange(c.shape[0])
+    flo, fhi = fn(every, _horner(c, lo)), fn(every, _horner(c, hi))
+    s = illinois_root(lambda i, x: fn(i, _horner(c[i], x)), lo, hi, flo, fhi, SIGMA_TOL)
+    return np.where(np.sign(flo) == np.sign(fhi), hi, s)
 
 
 # ------------------------------------------------------------------ metrics
@@ -952,7 +954,7 @@ def _last_exit(pw: _Piecewise, final, band):
     lo = js / S + ext / S
     hi = (js + 1) / S
     e_end = np.abs(pw.at(e, hi) - final)
-    s = pw.bisect(e, lo, hi.astype(float), lambda v: np.abs(v - final) - band)
+    s = pw.sign_change(e, lo, hi, lambda i, v: np.abs(v - final[i]) - band[i])
     s = np.where(e_end > band, hi, s)              # a jump at the step's end leaves the band there
     t = pw.time(e, s)
     at_end = (e == pw.start[1:] - 1) & (js == S - 1) & (e_end > band)
@@ -970,7 +972,8 @@ def _first_reach(pw: _Piecewise, level, sign):
     end_ok = sign * pw.at(e, hi_end) >= level
     hi = np.where(end_ok, hi_end, lo + pw.loc(sign, js, e) / S)
     start_ok = sign * pw.at(e, lo) >= level
-    s = pw.bisect(e, lo, hi, lambda v: sign * v - level)
+    sg = np.broadcast_to(sign, level.shape)
+    s = pw.sign_change(e, lo, hi, lambda i, v: sg[i] * v - level[i])
     s = np.where(start_ok, lo, s)
     return np.where(hit, pw.time(e, s), np.inf)
 

@@ -21,6 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..lti import batch_add, batch_conv, batch_polyval, batch_roots
+from .bracket import brent_minimize, illinois_root
 from .time import highest_per_row
 
 _REAL_TOL = 1e-6      # |Im x| / (1 + |x|) below which a root in x = w^2 counts as real
@@ -362,7 +363,6 @@ def _closed_loop_mag(nls, dls, delay, which):
 PEAK_CANDIDATES = 6   # local maxima of the grid refined per candidate
 PHASE_CANDIDATES = 6  # phase-crossing intervals (|L| nearest 1) refined per candidate
 FREQ_CHUNK = 512      # candidates per pass of the dead-time frequency metrics
-ILLINOIS_STEPS = 10   # Illinois steps per crossing before bisection finishes the wide brackets
 CROSSING_TOL = 4e-15  # bracket width in ln w (relative in w) at which a crossing is located
 
 
@@ -398,70 +398,15 @@ def _grid_peak(f, grid, v=None, tol: float = 3e-9):
     return peak, where
 
 
-_CGOLD = 0.5 * (3.0 - np.sqrt(5.0))
-
-
-def brent_minimize(F, a, x, b, fx, tol, iters: int = 60):
-    """Minimum of F(idx, x) (the function of entries idx at points x) inside brackets [a, b]
-    (arrays, all entries together) from interior points x with known values fx: Brent's method (parabolic steps through the three best points,
-    golden-section steps where a parabola is not trusted; R. P. Brent, *Algorithms for
-    Minimization without Derivatives*, 1973, ch. 5), one batched evaluation of F per step.
-    An entry stops once its bracket is within about 4 ``tol`` (absolute in x). Returns (x, F(x))."""
-    a, b, x, fx = (np.array(z, float) for z in (a, b, x, fx))
-    w, v, fw, fv = x.copy(), x.copy(), fx.copy(), fx.copy()
-    d = np.zeros_like(x)
-    e = np.zeros_like(x)
-    act = np.arange(x.size)
-    for _ in range(iters):
-        m = 0.5 * (a + b)
-        tol2 = 2 * tol
-        act = act[np.abs(x[act] - m[act]) > tol2 - 0.5 * (b[act] - a[act])]
-        if act.size == 0:
-            break
-        A, B, X, W, V = a[act], b[act], x[act], w[act], v[act]
-        FX, FW, FV, D, Ee, M = fx[act], fw[act], fv[act], d[act], e[act], m[act]
-        with np.errstate(invalid="ignore", over="ignore"):
-            r = (X - W) * (FX - FV)
-            q = (X - V) * (FX - FW)
-            p = (X - V) * q - (X - W) * r
-            q = 2 * (q - r)
-            p = np.where(q > 0, -p, p)
-            q = np.abs(q)
-            para = (np.abs(Ee) > tol) & (np.abs(p) < np.abs(0.5 * q * Ee)) & (p > q * (A - X)) & (p < q * (B - X))
-            dp = np.where(para, p / np.where(q != 0, q, 1.0), 0.0)
-        u = X + dp
-        near_end = para & ((u - A < tol2) | (B - u < tol2))
-        dp = np.where(near_end, np.where(M >= X, tol, -tol), dp)
-        eg = np.where(X >= M, A - X, B - X)                  # golden section into the larger part
-        e_new = np.where(para, D, eg)
-        d_new = np.where(para, dp, _CGOLD * eg)
-        u = X + np.where(np.abs(d_new) >= tol, d_new, np.where(d_new >= 0, tol, -tol))
-        fu = F(act, u)
-        better = fu <= FX
-        A2 = np.where(better, np.where(u >= X, X, A), np.where(u < X, u, A))
-        B2 = np.where(better, np.where(u >= X, B, X), np.where(u < X, B, u))
-        to_w = ~better & ((fu <= FW) | (W == X))
-        to_v = ~better & ~to_w & ((fu <= FV) | (V == X) | (V == W))
-        a[act], b[act] = A2, B2
-        v[act] = np.where(better | to_w, W, np.where(to_v, u, V))
-        fv[act] = np.where(better | to_w, FW, np.where(to_v, fu, FV))
-        w[act] = np.where(better, X, np.where(to_w, u, W))
-        fw[act] = np.where(better, FX, np.where(to_w, fu, FW))
-        x[act] = np.where(better, u, X)
-        fx[act] = np.where(better, fu, FX)
-        d[act], e[act] = d_new, e_new
-    return x, fx
 
 
 def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False, select=None):
     """Sign changes of ``vals`` along each grid row, refined on fun(rows, w) in ln w.
 
     All (candidate, interval) pairs are refined together (only those in ``select`` when
-    given): ILLINOIS_STEPS of the Illinois method (regula falsi that halves the stale end's
-    value; superlinear, and the root stays bracketed; Dowell & Jarratt, BIT 11, 1971), then
-    bisection of the brackets still wider than CROSSING_TOL, at most ``iters`` halvings (48
-    halvings of a grid interval reach the spacing of doubles in ln w). Returns an (N, M)
-    NaN-padded array of crossing frequencies.
+    given) by :func:`synth.evaluate.bracket.illinois_root` to CROSSING_TOL in ln w (at most
+    ``iters`` halvings after the Illinois steps; 48 halvings of a grid interval reach the
+    spacing of doubles in ln w). Returns an (N, M) NaN-padded array of crossing frequencies.
     """
     sgn = np.sign(vals)
     ch = (sgn[:, :-1] * sgn[:, 1:] < 0) & np.isfinite(vals[:, :-1]) & np.isfinite(vals[:, 1:])
@@ -476,30 +421,7 @@ def _bisect_crossings(fun, grid, vals, iters: int = 48, first_only: bool = False
     if rows.size == 0:
         return out
     order = np.arange(rows.size) - np.searchsorted(rows, rows)     # place among the row's crossings
-    a = np.log(grid[rows, cols])
-    b = np.log(grid[rows, cols + 1])
-    fa, fb = vals[rows, cols], vals[rows, cols + 1]
-    for _ in range(ILLINOIS_STEPS):
-        with np.errstate(invalid="ignore", divide="ignore"):
-            x = b - fb * (b - a) / (fb - fa)
-        lo, hi = np.minimum(a, b), np.maximum(a, b)
-        x = np.where((x > lo) & (x < hi), x, 0.5 * (a + b))       # a secant outside: bisect
-        fx = fun(rows, np.exp(x))
-        flip = np.sign(fx) != np.sign(fb)                         # the root lies between x and b
-        a, fa = np.where(flip, b, a), np.where(flip, fb, 0.5 * fa)
-        b, fb = x, fx
-        exact = fx == 0
-        a, fa = np.where(exact, x, a), np.where(exact, 0.0, fa)
-    todo = np.flatnonzero(np.abs(b - a) > CROSSING_TOL)
-    for _ in range(iters):
-        if todo.size == 0:
-            break
-        mid = 0.5 * (a[todo] + b[todo])
-        fm = fun(rows[todo], np.exp(mid))
-        same = np.sign(fm) == np.sign(fb[todo])
-        b[todo] = np.where(same, mid, b[todo])
-        fb[todo] = np.where(same, fm, fb[todo])
-        a[todo] = np.where(same, a[todo], mid)
-        todo = todo[np.abs(b[todo] - a[todo]) > CROSSING_TOL]
-    out[rows, order] = np.exp(0.5 * (a + b))
+    x = illinois_root(lambda idx, u: fun(rows[idx], np.exp(u)), np.log(grid[rows, cols]),
+                      np.log(grid[rows, cols + 1]), vals[rows, cols], vals[rows, cols + 1], CROSSING_TOL, iters)
+    out[rows, order] = np.exp(x)
     return out

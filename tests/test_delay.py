@@ -270,3 +270,26 @@ def test_common_imaginary_axis_factor_is_not_stable():
     a = np.polymul(f, [1.0, 2.0])[None, :]
     b = np.pad(np.polymul(f, [0.5]), (1, 0))[None, :]
     assert not delay.rhp_count(a, b, 0.3)[0][0]
+
+
+@given(st.lists(st.tuples(st.floats(-50.0, 5.0), st.floats(-50.0, 50.0)), min_size=1, max_size=12),
+       st.lists(st.integers(0, 11), max_size=6), st.floats(-1e-9, 1e-9))
+@settings(max_examples=200, deadline=None)
+def test_dedupe_roots_keeps_one_of_each_cluster(points, copies, jitter):
+    """dedupe_roots against the definition checked pair by pair in plain Python: a root is
+    dropped exactly where an earlier one (in the rightmost-first order) lies within
+    rel * max(|s|, 1) of it; NaN entries stay NaN."""
+    from synth.evaluate.delay import dedupe_roots
+    s = [complex(a, b) for a, b in points]
+    s += [s[i % len(s)] * (1 + jitter) for i in copies]          # near-copies of some roots
+    row = np.array([s + [complex(np.nan, 0.0)]])
+    got = dedupe_roots(row)[0]
+    order = sorted(range(len(s)), key=lambda i: -s[i].real)        # stable, like the function
+    kept = []
+    for pos, i in enumerate(order):
+        earlier = [s[j] for j in order[:pos]]
+        dup = any(abs(s[i] - e) <= 1e-7 * max(abs(s[i]), 1.0) for e in earlier)
+        kept.append(np.nan if dup else s[i])
+    ref = np.array(kept + [complex(np.nan, 0.0)])
+    assert np.array_equal(np.isnan(got), np.isnan(ref))
+    np.testing.assert_array_equal(got[~np.isnan(got)], ref[~np.isnan(ref)])

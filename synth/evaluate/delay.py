@@ -208,12 +208,16 @@ def dedupe_roots(s: np.ndarray, rel: float = 1e-7) -> np.ndarray:
     order = np.argsort(-key, axis=1, kind="stable")
     s = np.take_along_axis(s, order, axis=1)
     k = s.shape[1]
-    if k < 2:
-        return s
-    d = np.abs(s[:, :, None] - s[:, None, :])
-    close = d <= rel * np.maximum(np.abs(s[:, :, None]), 1.0)
-    earlier = np.tril(np.ones((k, k), bool), -1)
-    dup = np.any(close & earlier[None, :, :], axis=2)
+    dup = np.zeros(s.shape, bool)
+    tol = rel * np.maximum(np.abs(s), 1.0)
+    # compare each root with those j places earlier in the order, j = 1, 2, ...: once every
+    # real-part gap at some j exceeds the tolerance, larger j (larger gaps) cannot match
+    for j in range(1, k):
+        later, before = s[:, j:], s[:, :-j]
+        with np.errstate(invalid="ignore"):
+            dup[:, j:] |= np.abs(later - before) <= tol[:, j:]
+            if not np.any(before.real - later.real <= tol[:, j:]):
+                break
     return np.where(dup, np.nan, s)
 
 

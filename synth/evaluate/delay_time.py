@@ -837,17 +837,13 @@ class _Piecewise:
     def first_last(self, hit, last=False):
         """First (or last) step of each row where ``hit`` (E,) holds: (step (N,), any (N,));
         rows without one get their first step."""
-        idx = np.flatnonzero(hit)
-        rows = np.arange(self.start.size - 1)
-        ri = self.row[idx]
+        step = np.arange(hit.size)
         if last:
-            pos = np.searchsorted(ri, rows, side="right") - 1
-            found = (pos >= 0) & (ri[np.maximum(pos, 0)] == rows) if idx.size else np.zeros(rows.size, bool)
+            e = self.per_row(np.maximum, np.where(hit, step, -1))
         else:
-            pos = np.searchsorted(ri, rows)
-            found = (pos < idx.size) & (ri[np.minimum(pos, idx.size - 1)] == rows) if idx.size else np.zeros(rows.size, bool)
-        e = np.where(found, idx[np.clip(pos, 0, max(idx.size - 1, 0))] if idx.size else 0, self.start[:-1])
-        return e, found
+            e = self.per_row(np.minimum, np.where(hit, step, hit.size))
+        found = (e >= self.start[:-1]) & (e < self.start[1:])
+        return np.where(found, e, self.start[:-1]), found
 
     def sample_range(self):
         """(max, min) over the horizon of the exact sub-samples, per row (computed once)."""

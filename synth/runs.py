@@ -28,6 +28,11 @@ from .metric_names import METRICS
 from .spec import Spec, SpecError, load_spec
 
 SHOWN_STORED = 50          # rows whose certified records are stored when a search ends
+MIN_SHOWN = 10             # ... never fewer, even when the time limit is nearly used up (the default --top)
+RESERVE_PROBE = 8          # stable rows certified once, timed, to learn what certifying a row costs
+RESERVE_SHARE = 0.25       # at most this share of the time limit is kept back for the final ranking
+RANK_PROBE_ROWS = 2000     # stored rows when ranking them is timed once (what the final ranking will cost)
+RANK_WRITE_FACTOR = 1.5    # the final ranking also writes the ranking back: ~half again of reading and ranking
 RECORD_CHUNK = 2000        # rows per chunk when streaming records of a whole run
 
 
@@ -87,7 +92,7 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
     ``executor`` (synth.executor) runs the evaluator's batches; None runs them in-process.
     Storage stays here in the calling process: one writer per run folder.
     Resuming continues an interrupted run, and extends a finished one: ``budget`` is the
-    new cap on the run's total evaluations, ``time_limit`` the seconds of search for this
+    new cap on the run's total evaluations, ``time_limit`` the seconds (search and ranking) for this
     session (default: the run's own limit). A finished run whose budget is used up and
     that is given no larger budget is reported as an error instead of doing nothing.
     """
@@ -129,10 +134,13 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
                 store.append(inherited)
                 previous = inherited
         t0 = time.perf_counter()
+        finish = FinishCost()                   # what ranking and certifying will take, learned on the way
 
         def on_batch(df, st):
             store.append(df, state=st)          # rows and the state after them: one transaction
             store.save_json("state.json", st)
+            finish.learn(spec, Run(store.folder, spec, store, manifest), df, int(st["evaluated"]))
+            search.reserve_s = finish.reserve(settings.time_limit_s, shown, int(st["evaluated"]))
 
         search = make_search(spec, settings, on_batch, on_progress, executor)
         if not previous.empty:
@@ -145,13 +153,16 @@ def run_search(spec: Spec, spec_text: str, out: Path | None = None, settings=Non
             search._warm = search.space.encode(warm_params)
         manifest.update(space_manifest(search))
         store.save_json("manifest.json", manifest)
+        finish.setup_s = time.perf_counter() - t0    # before the search clock starts
         search.run()
         store.save_json("state.json", dict(search.state))
-        add_timing(manifest, time.perf_counter() - t0, search.state)
-        store.save_json("manifest.json", manifest)
+        shown = finish.rows_that_fit(settings.time_limit_s - (time.perf_counter() - t0), shown)
         run = Run(store.folder, spec, store, manifest)
         _report_phase(on_progress, "ranking", search)
+        t1 = time.perf_counter()
         store_ranking(run, shown)
+        add_timing(manifest, time.perf_counter() - t0, search.state, time.perf_counter() - t1)
+        store.save_json("manifest.json", manifest)
         return run
     finally:
         store.close()
@@ -180,9 +191,51 @@ def space_manifest(search) -> dict:
             "bounds_applied": list(sp.notes), "infeasible_by_construction": list(sp.infeasible)}
 
 
-def add_timing(manifest: dict, wall_s: float, state: dict) -> None:
-    manifest.setdefault("timings", []).append({"wall_s": round(wall_s, 3), "evaluated": state["evaluated"],
+def add_timing(manifest: dict, wall_s: float, state: dict, ranking_s: float) -> None:
+    """One session's timings: ``wall_s`` search and final ranking, ``ranking_s`` the ranking alone
+    (ranking every row and certifying the first ones), seconds."""
+    manifest.setdefault("timings", []).append({"wall_s": round(wall_s, 3), "ranking_s": round(ranking_s, 3),
+                                               "evaluated": state["evaluated"],
                                                "first_feasible_s": state["first_feasible_s"]})
+
+
+@dataclass
+class FinishCost:
+    """What the work after the search costs, learned during it, so that the time limit covers
+    the whole run: the setup before the search clock starts, certifying one row (exact
+    certificates, every model of a set: far more than screening) and ranking one stored row
+    (reading the archive back, ranking, writing the ranking). Seconds."""
+    setup_s: float = 0.0
+    certify_row_s: float | None = None
+    rank_row_s: float | None = None
+
+    def learn(self, spec: Spec, run: Run, df, rows: int) -> None:
+        """Time the two probes once each, on the first batch that allows it: RESERVE_PROBE stable
+        rows of ``df`` certified (feasible ones first), and the stored ``rows`` ranked once
+        there are RANK_PROBE_ROWS of them. Fixed costs per call make both overestimates."""
+        if self.certify_row_s is None and not df.empty and "internally_stable" in df:
+            stable = df[df["internally_stable"].to_numpy(bool)]
+            if len(stable) >= RESERVE_PROBE:
+                probe = stable.sort_values("feasible", ascending=False, kind="stable").head(RESERVE_PROBE)
+                fam = _family(spec)
+                t = time.perf_counter()
+                evaluate_spec(spec, fam, probe[fam.names].to_numpy(float), certify_options(spec))
+                self.certify_row_s = (time.perf_counter() - t) / len(probe)
+        if self.rank_row_s is None and rows >= RANK_PROBE_ROWS:
+            t = time.perf_counter()
+            compute_ranked(run)
+            self.rank_row_s = RANK_WRITE_FACTOR * (time.perf_counter() - t) / rows
+
+    def reserve(self, limit_s: float, shown: int, rows: int) -> float:
+        """Seconds of the limit to keep back from the search (at most RESERVE_SHARE of it)."""
+        need = self.setup_s + shown * (self.certify_row_s or 0.0) + rows * (self.rank_row_s or 0.0)
+        return min(RESERVE_SHARE * limit_s, need)
+
+    def rows_that_fit(self, left_s: float, shown: int) -> int:
+        """How many first rows to certify in ``left_s`` seconds: ``shown`` at most, MIN_SHOWN at least."""
+        if not self.certify_row_s or not np.isfinite(left_s):
+            return shown
+        return max(min(shown, MIN_SHOWN), min(shown, int(left_s / self.certify_row_s)))
 
 
 def _report_phase(on_progress, phase: str, search) -> None:
@@ -310,8 +363,18 @@ def _records(run: Run, df, stored: dict, certify: bool, text: bool = False) -> I
 
 
 def family_of(run: Run):
+    return _family(run.spec)
+
+
+def _family(spec: Spec):
     from .search.space import build_space
-    return build_space(run.spec.plant, run.spec.controller, dict(run.spec.requirements)).family
+    return build_space(spec.plant, spec.controller, dict(spec.requirements)).family
+
+
+def certify_options(spec: Spec):
+    """Evaluator options for certified (displayed, exported) figures of the spec."""
+    from .evaluate import EvalOptions
+    return EvalOptions(settling_band=spec.options.settling_band, pade_order=spec.options.pade_order, certify=True)
 
 
 def evaluate_spec(spec: Spec, fam, params: np.ndarray, opts):
@@ -328,14 +391,10 @@ def evaluate_spec(spec: Spec, fam, params: np.ndarray, opts):
 
 def recheck(run: Run, rows):
     """Re-evaluate rows from their parameters with the exact certificate (for display/export)."""
-    from .evaluate import EvalOptions
     fam = family_of(run)
     if rows.empty:
         return rows
-    params = rows[fam.names].to_numpy(float)
-    opts = EvalOptions(settling_band=run.spec.options.settling_band, pade_order=run.spec.options.pade_order,
-                       certify=True)
-    df = evaluate_spec(run.spec, fam, params, opts)
+    df = evaluate_spec(run.spec, fam, rows[fam.names].to_numpy(float), certify_options(run.spec))
     df.insert(0, "id", rows["id"].to_numpy())
     for c in ("rank", "front", "knee", "crowding", "violation"):
         if c in rows:

@@ -331,7 +331,8 @@ def design_summary(run: Run, view: TableView) -> str:
     lines = [f"run folder: {run.folder}"]
     t = (m.get("timings") or [{}])[-1]
     ff = t.get("first_feasible_s")
-    lines.append(f"search: {t.get('evaluated', 0)} evaluations in {fmt_num(t.get('wall_s'), 3)} s; first "
+    rk = f" (ranking and certificates {fmt_num(t['ranking_s'], 3)} s of it)" if "ranking_s" in t else ""
+    lines.append(f"search: {t.get('evaluated', 0)} evaluations in {fmt_num(t.get('wall_s'), 3)} s{rk}; first "
                  f"feasible design after {fmt_num(ff, 3) + ' s' if ff is not None else 'none found'}")
     for note in m.get("bounds_applied", []):
         lines += textwrap.wrap("bound: " + note, WIDTH, subsequent_indent="       ")

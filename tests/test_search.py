@@ -203,3 +203,33 @@ def test_tighten_never_shows_violators_and_loosen_keeps_feasible(tmp_path):
     loose = dict(spec.requirements, max_overshoot_pct=40.0)
     lo = ranked(run, loose)
     assert set(base[base["feasible"]]["id"]) <= set(lo[lo["feasible"]]["id"])
+
+
+def test_time_limit_keeps_back_what_the_final_ranking_costs(tmp_path):
+    # The limit covers the whole run: a reserve as long as the limit leaves the search no
+    # time at all, and what ranking and certifying cost is learned from the run's own batches.
+    from synth.runs import MIN_SHOWN, RESERVE_PROBE, RESERVE_SHARE, SHOWN_STORED, FinishCost, Run
+    spec = parse_spec(MAGLEV)
+    s = Search(spec.plant, spec.controller, dict(spec.requirements), spec.objectives,
+               Settings(budget=3000, time_limit_s=5.0, seed=0), EvalOptions())
+    s.reserve_s = 5.0
+    s.run()
+    assert s.state["evaluated"] == 0
+
+    run = run_search(spec, MAGLEV, out=tmp_path / "r", settings=Settings(budget=2500, time_limit_s=60, seed=1))
+    df = run.store.load()
+    stable = df[df["internally_stable"]]
+    assert len(stable) >= RESERVE_PROBE
+    cost = FinishCost()
+    cost.learn(spec, run, stable.head(RESERVE_PROBE - 1), len(df))        # too few stable rows: no probe yet
+    assert cost.certify_row_s is None and cost.rank_row_s is not None and cost.rank_row_s > 0
+    cost.learn(spec, run, df, len(df))
+    assert cost.certify_row_s > 0
+    assert cost.reserve(1e-3, SHOWN_STORED, len(df)) == pytest.approx(RESERVE_SHARE * 1e-3)   # never most of the limit
+    assert cost.reserve(1e6, SHOWN_STORED, len(df)) >= SHOWN_STORED * cost.certify_row_s
+    assert cost.rows_that_fit(0.0, SHOWN_STORED) == MIN_SHOWN
+    assert cost.rows_that_fit(1e6, SHOWN_STORED) == SHOWN_STORED
+    assert cost.rows_that_fit(20.5 * cost.certify_row_s, SHOWN_STORED) == 20
+    t = run.manifest["timings"][-1]
+    assert 0 < t["ranking_s"] <= t["wall_s"]
+    assert isinstance(run, Run) and run.store.ranking_meta()["shown"] == SHOWN_STORED   # the limit did not bind

@@ -125,6 +125,7 @@ class Search:
         self._hv_at = -1.0
         self._hv_dirty = False
         self._phase_end = np.inf
+        self.reserve_s = 0.0              # seconds of the limit kept for the work after the search (set by the run)
         try:                              # the convex step's solver: imported before the clock starts
             import cvxpy  # noqa: F401
         except ImportError:               # pragma: no cover - a declared dependency
@@ -203,8 +204,13 @@ class Search:
     def _elapsed(self) -> float:
         return self.state.get("search_s_before", 0.0) + (_time.perf_counter() - self._t0)
 
+    def _limit(self) -> float:
+        """Seconds of search allowed: the time limit less what the run keeps for ranking and
+        certifying the first rows when the search ends (``reserve_s``)."""
+        return self.settings.time_limit_s - self.reserve_s
+
     def _out_of_time(self) -> bool:
-        return self._elapsed() >= min(self.settings.time_limit_s, self._phase_end)
+        return self._elapsed() >= min(self._limit(), self._phase_end)
 
     def _left(self) -> int:
         return self.settings.budget - self.state["evaluated"]
@@ -219,7 +225,7 @@ class Search:
         if spr is None and self._sec_per_row:     # a new kind of batch: assume a full evaluation's cost
             spr = UNKNOWN_COST * max(self._sec_per_row.values())
         if spr and n > 0:
-            left_s = min(self.settings.time_limit_s, self._phase_end) - self._elapsed()
+            left_s = min(self._limit(), self._phase_end) - self._elapsed()
             fits = int(left_s / (TRIM_SAFETY * spr))
             if fits < n:
                 n = max(fits, 0)
@@ -227,7 +233,7 @@ class Search:
 
     def time_left(self) -> float:
         """Seconds until the time limit or the current phase's share of it."""
-        return min(self.settings.time_limit_s, self._phase_end) - self._elapsed()
+        return min(self._limit(), self._phase_end) - self._elapsed()
 
     def batch_size(self, n: int) -> int:
         """Batch size for a phase: ``n`` for rational plants, SLOW_BATCH for dead-time plants."""
@@ -319,7 +325,7 @@ class Search:
             getattr(self, f"_phase_{ph}")()
             self._phase_end = np.inf
             self._report(force=True)
-            if self._left() > 0 and self._elapsed() < self.settings.time_limit_s:
+            if self._left() > 0 and self._elapsed() < self._limit():
                 self.state["step"] = step + 1      # an interrupted phase is re-entered on resume
         self.state["phase"] = "done"
         self.state["search_s"] = self._elapsed()
@@ -331,7 +337,7 @@ class Search:
 
         Only when the budget would outlast the clock at the rate seen so far: a run the
         budget ends stays free of clock effects, hence deterministic."""
-        left = self.settings.time_limit_s - self._elapsed()
+        left = self._limit() - self._elapsed()
         if not np.isfinite(left):
             return np.inf
         ev = self.state["evaluated"]

@@ -16,12 +16,15 @@ from pathlib import Path
 import mpmath
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal
 
 sys.path.insert(0, str(Path(__file__).parent))
 from _oracles import closed_loop, scipy_step  # noqa: E402
 
 from synth.evaluate import EvalOptions, evaluate_controllers  # noqa: E402
+from synth.evaluate import time as tm  # noqa: E402
 from synth.evaluate.time import exact_integral, simulate  # noqa: E402
 from synth.lti import TransferFunction  # noqa: E402
 
@@ -277,3 +280,43 @@ def test_step_responses_helper_matches_scipy():
         np.testing.assert_allclose(r.y[0, :, i], ref, rtol=0, atol=1e-6 * np.abs(ref).max(), err_msg=key)
     with pytest.raises(ValueError):
         step_responses(TransferFunction([100.0], np.polymul([1.0, 1.0, 0.0], [1.0, 5.0])), [[1.0]], [[1.0]])
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-10, 10), min_size=4, max_size=4))
+def test_cubic_top_is_the_largest_value_of_the_cubic(v):
+    # the largest value on [0, 1] of the Hermite cubic against np.roots of its derivative
+    # (numpy, outside synth) and a dense grid: the maximum of a cubic on an interval is at an
+    # end or at a real stationary point inside
+    y0, y1, d0, d1 = v
+    c = np.array([2 * y0 + d0 - 2 * y1 + d1, -3 * y0 - 2 * d0 + 3 * y1 - d1, d0, y0])
+    stat = [r.real for r in np.roots(np.polyder(c)) if abs(r.imag) < 1e-12 and 0 <= r.real <= 1] if c[0] or c[1] else []
+    ref = max(np.polyval(c, np.array([0.0, 1.0, *stat])))
+    dense = np.polyval(c, np.linspace(0, 1, 20001)).max()
+    got = tm.cubic_top(np.array(y0), np.array(y1), np.array(d0), np.array(d1))
+    scale = max(1.0, np.abs(v).max())
+    assert got >= dense - 1e-12 * scale
+    assert abs(got - ref) <= 1e-9 * scale
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(0.01, 100), st.floats(0.02, 1.0)), min_size=1, max_size=4))
+def test_growing_step_keeps_every_alive_mode_resolved_and_grows_as_far_as_allowed(modes):
+    # plan(): each segment's step resolves every mode still alive at the segment's start
+    # (step * |p| <= RESOLUTION while sigma * t < ALIVE_DECAYS), and doubling it once more
+    # would break that rule unless the growth is already at its cap
+    poles = np.array([[-z * w + 1j * w * np.sqrt(1 - z * z) for w, z in modes]])
+    sig, mag = -poles.real[0], np.abs(poles[0])
+    decay = sig.min()
+    t_end = np.array([tm.HORIZON_DECAYS / decay])
+    h0, growth, nseg = tm.plan(poles, t_end)
+    h, t = h0[0], tm.FIRST_SEGMENT * h0[0]
+    assert h * mag.max() <= tm.RESOLUTION * (1 + 1e-12) or h == t_end[0] / tm.FIRST_SEGMENT
+    for d in growth[0, :nseg[0]]:
+        alive = sig * t < tm.ALIVE_DECAYS
+        hreq = (tm.RESOLUTION / mag[alive]).min() if alive.any() else np.inf
+        h *= 2.0 ** d
+        assert h <= hreq * (1 + 1e-12) or d == 0
+        assert d == tm.MAX_GROWTH or 2 * h > hreq
+        t += tm.SEGMENT_SAMPLES * h
+    assert t >= t_end[0] or nseg[0] == growth.shape[1]

@@ -9,11 +9,11 @@ exponential (Van Loan, IEEE TAC 23, 1978), which is exact at the sample instants
 for a step input.
 
 The grid is planned per candidate from its closed-loop poles: the first step
-resolves the fastest pole (RESOLUTION/|p| in scaled time), and the step doubles
-at a segment boundary only while every mode still alive (e^(-sigma t) above
-e^-ALIVE_DECAYS) keeps at least 2 pi/RESOLUTION samples per radian of its
-frequency; the horizon is HORIZON_DECAYS/decay rate. Candidates are simulated in
-groups of similar grid length. Peaks and threshold crossings are refined inside
+resolves the fastest pole (RESOLUTION/|p| in scaled time), and at each segment
+boundary the step grows by the largest power of two that keeps every mode still
+alive (e^(-sigma t) above e^-ALIVE_DECAYS) at RESOLUTION or finer (at least
+2 pi/RESOLUTION samples per period); the horizon is HORIZON_DECAYS/decay rate.
+Candidates are simulated in groups of similar grid length (within 2^(1/3)). Peaks and threshold crossings are refined inside
 their sample interval on 16 extra exact samples (one more matrix exponential),
 then by cubic Hermite interpolation from exact values and exact derivatives.
 """
@@ -24,13 +24,18 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .bracket import illinois_root
+
 FIRST_SEGMENT = 128      # samples at the finest step (a multiple of SEGMENT_SAMPLES)
-SEGMENT_SAMPLES = 32     # samples per later segment (the step may double between segments)
+SEGMENT_SAMPLES = 32     # samples per later segment (the step may grow between segments)
 HORIZON_DECAYS = 14.0    # horizon = this / decay rate (e^-14 ~ 1e-6 of a unit residue)
-ALIVE_DECAYS = 16.0      # a mode counts as alive while sigma * t < this
+ALIVE_DECAYS = 20.0      # a mode counts as alive while sigma * t < this
 RESOLUTION = 0.8         # largest step * |pole| for a mode still alive (~8 samples per period)
 MAX_SAMPLES = 1 << 15    # cap per candidate; beyond it the horizon is cut (settling then reads inf)
+MAX_GROWTH = 10          # the step grows by at most 2^MAX_GROWTH at one segment boundary
+GROUPS_PER_OCTAVE = 3    # grid lengths grouped within 2^(1/3): little padding, few calls
 SUBSAMPLES = 16          # exact sub-samples inside an interval being refined
+CROSS_TOL = 1e-13        # a crossing's place inside its sub-interval, as a fraction of it
 
 
 @dataclass
@@ -57,10 +62,12 @@ def _pad_to(p: np.ndarray, m: int) -> np.ndarray:
 
 
 def plan(poles_s: np.ndarray, t_end: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-candidate first step h0, doubling flags (N, S) and number of segments needed.
+    """Per-candidate first step h0, step growth per segment (N, S) and number of segments needed.
 
     ``poles_s`` are the closed-loop poles in scaled time (NaN padded), ``t_end`` the
-    scaled horizons.
+    scaled horizons. At each segment boundary the step grows by the largest power of two
+    2^d (d <= MAX_GROWTH) that keeps every mode still alive resolved; the growth array
+    holds d.
     """
     n = t_end.shape[0]
     mag = np.abs(poles_s)
@@ -74,7 +81,7 @@ def plan(poles_s: np.ndarray, t_end: np.ndarray) -> tuple[np.ndarray, np.ndarray
     t = FIRST_SEGMENT * h0
     h = h0.copy()
     smax = (MAX_SAMPLES - FIRST_SEGMENT) // SEGMENT_SAMPLES
-    flags = np.zeros((n, smax), bool)
+    growth = np.zeros((n, smax), np.int8)
     nseg = np.zeros(n, dtype=int)
     act = np.flatnonzero(t < t_end)          # rows still short of their horizon
     for j in range(smax):
@@ -82,13 +89,33 @@ def plan(poles_s: np.ndarray, t_end: np.ndarray) -> tuple[np.ndarray, np.ndarray
             break
         alive = sig[act] * t[act, None] < ALIVE_DECAYS
         hreq = np.min(np.where(alive, need[act], np.inf), axis=1) if need.shape[1] else np.full(act.size, np.inf)
-        dbl = 2 * h[act] <= hreq
-        h[act] = np.where(dbl, 2 * h[act], h[act])
-        flags[act, j] = dbl
+        d = np.zeros(act.size, np.int8)
+        for _ in range(MAX_GROWTH):           # doublings while the doubled step still resolves every alive mode
+            up = (d < MAX_GROWTH) & (2.0 ** (d + 1) * h[act] <= hreq)
+            if not up.any():
+                break
+            d += up
+        h[act] *= 2.0 ** d
+        growth[act, j] = d
         t[act] += SEGMENT_SAMPLES * h[act]
         nseg[act] += 1
         act = act[t[act] < t_end[act]]
-    return h0, flags[:, :max(int(nseg.max()) if n else 0, 0)], nseg
+    return h0, growth[:, :max(int(nseg.max()) if n else 0, 0)], nseg
+
+
+def _powers(phi: np.ndarray, gam: np.ndarray, m: int) -> tuple[np.ndarray, np.ndarray]:
+    """P[k] = Phi^(k+1) and G[k] = sum_{i<=k} Phi^i Gamma for k < m (batch on the last axis),
+    by doubling: Phi^(k+j) = Phi^j Phi^k, G_(k+j) = Phi^j G_k + G_j."""
+    order, n_c = gam.shape
+    P = np.empty((m, order, order, n_c))
+    G = np.empty((m, order, n_c))
+    P[0], G[0] = phi, gam
+    k = 1
+    while k < m:
+        P[k:2 * k] = np.einsum("mijn,jkn->mikn", P[:k], P[k - 1])
+        G[k:2 * k] = np.einsum("mijn,jn->min", P[:k], G[k - 1]) + G[:k]
+        k *= 2
+    return P, G
 
 
 def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np.ndarray,
@@ -138,29 +165,38 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
     T = np.zeros((total, n_c))
     x = np.zeros((order, n_c))
     tcur, h = np.zeros(n_c), h0.copy()
-    # a block of M steps at once: x_j = Phi^j x_0 + G_j, G_j = sum_{i<j} Phi^i Gamma, built by
-    # doubling (Phi^(k+j) = Phi^j Phi^k, G_(k+j) = Phi^j G_k + G_j); P[m] = Phi^(m+1), G[m] = G_(m+1)
-    P = np.empty((M, order, order, n_c))
-    G = np.empty((M, order, n_c))
-    P[0], G[0] = phi.transpose(1, 2, 0), gam.T           # batch on the last axis
-    k = 1
-    while k < M:
-        P[k:2 * k] = np.einsum("mijn,jkn->mikn", P[:k], P[k - 1])
-        G[k:2 * k] = np.einsum("mijn,jn->min", P[:k], G[k - 1]) + G[:k]
-        k *= 2
+    # a block of M steps at once: x_j = Phi^j x_0 + G_j (G_j = sum_{i<j} Phi^i Gamma), from
+    # P[m] = Phi^(m+1), G[m] = G_(m+1) built by doubling
+    P, G = _powers(phi.transpose(1, 2, 0), gam.T, M)
     half = M // 2
     first_blocks = FIRST_SEGMENT // M
     for b in range(first_blocks + segs):
         seg = b - first_blocks + 1
-        if seg > 0 and flags[:, seg - 1].any():
-            # where the plan doubles the step: Phi(2h)^j = Phi(h)^(2j) and G_j(2h) = G_2j(h) for
-            # j <= M/2 are already there; the second half follows from them by one product
-            sel = np.flatnonzero(flags[:, seg - 1])
+        d = flags[:, seg - 1] if seg > 0 else None
+        if d is not None and (d == 1).any():
+            # the step doubles: Phi(2h)^j = Phi(h)^(2j) and G_j(2h) = G_2j(h) for j <= M/2 are
+            # already there; the second half follows from them by one product
+            sel = np.flatnonzero(d == 1)
             Pd, Gd = P[1::2][..., sel], G[1::2][..., sel]
             P[:half, ..., sel], G[:half, :, sel] = Pd, Gd
             P[half:, ..., sel] = np.einsum("mijn,jkn->mikn", Pd, Pd[-1])
             G[half:, :, sel] = np.einsum("mijn,jn->min", Pd, Gd[-1]) + Gd
             h[sel] *= 2
+        if d is not None and (d > 1).any():
+            # the step grows by 2^d: Phi(2^d h) = Phi(h)^(2^d) and Gamma(2^d h) = G_(2^d)(h),
+            # from the table (2^d <= M) or by squaring Phi^M further; then a new table
+            sel = np.flatnonzero(d > 1)
+            jump = 2 ** d[sel].astype(int)
+            k = np.minimum(jump, M) - 1
+            ph, gm = P[k, :, :, sel], G[k, :, sel]                          # (rows, n, n), (rows, n)
+            for _ in range(int(np.log2(max(jump.max() // M, 1)))):
+                more = jump > M
+                ph2 = np.einsum("rij,rjk->rik", ph, ph)
+                gm2 = np.einsum("rij,rj->ri", ph, gm) + gm
+                ph, gm = np.where(more[:, None, None], ph2, ph), np.where(more[:, None], gm2, gm)
+                jump = np.where(more, jump // 2, jump)
+            P[..., sel], G[..., sel] = _powers(ph.transpose(1, 2, 0), gm.T, M)
+            h[sel] *= 2.0 ** d[sel]
         i0 = 1 + b * M
         X[i0:i0 + M] = np.einsum("mijn,jn->min", P, x) + G
         T[i0:i0 + M] = tcur + h * np.arange(1, M + 1)[:, None]
@@ -301,34 +337,55 @@ def interval_extrema(t, y, dy):
     return hi, lo, hi_in, lo_in
 
 
-def _crossing_time(t, y, dy, k, level, iters: int = 40):
-    """Refine a crossing of ``level`` in interval [k, k+1] of each row (bisection on the cubic)."""
+def _crossing_time(t, y, dy, k, level):
+    """Refine a crossing of ``level`` in interval [k, k+1] of each row: a root of the cubic
+    Hermite interpolant (Illinois steps, :func:`bracket.illinois_root`, to CROSS_TOL of the
+    interval). Where the interval's ends do not straddle the level its right end is taken."""
     rows = np.arange(t.shape[0])
     k = np.clip(k, 0, t.shape[1] - 2)
     t0, t1 = t[rows, k], t[rows, k + 1]
     y0, y1, d0, d1 = y[rows, k], y[rows, k + 1], dy[rows, k], dy[rows, k + 1]
-    lo, hi = np.zeros_like(t0), np.ones_like(t0)
-    s0 = np.sign(y0 - level)
-    for _ in range(iters):
-        mid = 0.5 * (lo + hi)
-        same = np.sign(_hermite(t0, t1, y0, y1, d0, d1, mid) - level) == s0
-        lo = np.where(same, mid, lo)
-        hi = np.where(same, hi, mid)
-    return t0 + 0.5 * (lo + hi) * (t1 - t0)
+    lv = np.broadcast_to(np.asarray(level, float), t0.shape)
+    f0, f1 = y0 - lv, y1 - lv
+    straddle = np.sign(f0) * np.sign(f1) < 0
+    tau = np.where(f0 == 0, 0.0, 1.0)
+    i = np.flatnonzero(straddle)
+    if i.size:
+        def cubic(j, x):
+            r = i[j]
+            return _hermite(t0[r], t1[r], y0[r], y1[r], d0[r], d1[r], x) - lv[r]
+        tau[i] = illinois_root(cubic, np.zeros(i.size), np.ones(i.size), f0[i], f1[i], CROSS_TOL)
+    return t0 + tau * (t1 - t0)
+
+
+def cubic_top(y0, y1, d0, d1):
+    """Largest value on [0, 1] of the cubic Hermite interpolant with end values y0, y1 and
+    end slopes d0, d1 (already scaled by the interval length): the larger end or a stationary
+    point inside, both roots of the derivative's quadratic taken (clipped into [0, 1])."""
+    c3 = 2 * y0 + d0 - 2 * y1 + d1
+    c2 = -3 * y0 - 2 * d0 + 3 * y1 - d1
+    qa, qb, qc = 3 * c3, 2 * c2, d0
+    best = np.maximum(y0, y1)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        disc = np.sqrt(np.maximum(qb * qb - 4 * qa * qc, 0.0))
+        q = -0.5 * (qb + np.copysign(disc, qb))          # stable quadratic formula
+        for r in (q / qa, qc / q):
+            tau = np.clip(np.nan_to_num(r, nan=0.0, posinf=0.0, neginf=0.0), 0.0, 1.0)
+            best = np.maximum(best, ((c3 * tau + c2) * tau + d0) * tau + y0)
+    return best
 
 
 def _cubic_max(t, v, dv):
-    """max of v (N, K) with cubic refinement next to the largest sample."""
+    """max of v (N, K) with the cubic Hermite refinement on both intervals next to the largest sample."""
     rows = np.arange(t.shape[0])
     k = np.argmax(v, axis=1)
     best = v[rows, k]
-    tau = np.linspace(0, 1, 33)[None, :]
     for kk in (k - 1, k):
         ok = (kk >= 0) & (kk + 1 < t.shape[1])
         kk = np.clip(kk, 0, t.shape[1] - 2)
-        vals = _hermite(t[rows, kk][:, None], t[rows, kk + 1][:, None], v[rows, kk][:, None],
-                        v[rows, kk + 1][:, None], dv[rows, kk][:, None], dv[rows, kk + 1][:, None], tau)
-        best = np.where(ok, np.maximum(best, vals.max(axis=1)), best)
+        h = t[rows, kk + 1] - t[rows, kk]
+        top = cubic_top(v[rows, kk], v[rows, kk + 1], dv[rows, kk] * h, dv[rows, kk + 1] * h)
+        best = np.where(ok, np.maximum(best, top), best)
     return best
 
 
@@ -487,7 +544,7 @@ def grouped_time_metrics(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarra
     h0, flags, nseg = plan(poles / w0[:, None], t_end)
     length = FIRST_SEGMENT + SEGMENT_SAMPLES * nseg
     degree = char.shape[1] - 1 - np.argmax(char != 0, axis=1)   # rows of a batch may differ in order
-    bucket = np.ceil(np.log2(length)).astype(int) * (char.shape[1] + 1) + degree
+    bucket = np.ceil(GROUPS_PER_OCTAVE * np.log2(length)).astype(int) * (char.shape[1] + 1) + degree
     out: dict[str, np.ndarray] = {}
     for b in np.unique(bucket):
         idx = np.flatnonzero(bucket == b)

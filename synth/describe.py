@@ -40,6 +40,18 @@ def jsonable(x: Any) -> Any:
     return x
 
 
+def _confirmed_loop_roots(plant: TransferFunction, controller: TransferFunction, row) -> int:
+    """The evaluator's count of loop roots in the region of interest where the argument
+    principle confirms it, else -1 (not counted)."""
+    from .evaluate import delay
+    a, b = delay.split(plant.num, plant.den, controller.num[None, :], controller.den[None, :])
+    starts = np.asarray(row["closed_loop_poles"], complex)[None, :]
+    lr = delay.loop_roots(a, b, plant.delay, starts, count=True)
+    if lr.counted[0] != int(row["loop_roots_counted"]):
+        return -1
+    return int(delay.confirmed_count(a, b, plant.delay, lr)[0])
+
+
 def check_controller(plant: TransferFunction, controller: TransferFunction,
                      requirements: Mapping[str, float], settling_band: float = 0.02,
                      pade_order: int = 6, models=None) -> dict:
@@ -75,7 +87,7 @@ def check_controller(plant: TransferFunction, controller: TransferFunction,
     rec["closed_loop_poles"] = sorted(cert["poles"], key=lambda z: (-z.real, z.imag))
     rec["pade_order"] = int(row["pade_order"])
     if plant.delay:
-        rec["loop_roots_counted"] = int(row["loop_roots_counted"])
+        rec["loop_roots_counted"] = _confirmed_loop_roots(plant, controller, row) if stable else -1
         rec["time_horizon_cut"] = bool(row["time_horizon_cut"])
     reqs = {}
     for key, limit in requirements.items():
@@ -287,8 +299,9 @@ def format_record(rec: dict, title: str = "") -> str:
         counted = rec.get("loop_roots_counted", -1)
         out.append(f"loop roots: the {len(poles)} roots of the quasi-polynomial Dp Dc + Np Nc e^(-theta s) "
                    f"with Re s > -{delay.DOMINANCE:g} x decay rate (Newton on the quasi-polynomial; "
-                   + (f"{counted} counted there by the crossing count of the shifted quasi-polynomial, floating point)"
-                      if counted >= 0 else "not counted)"))
+                   + (f"{counted} counted there twice, by the crossing count of the shifted quasi-polynomial "
+                      "and by the argument principle on a contour around the region; floating point)"
+                      if counted >= 0 else "not counted: the two counts did not both settle and agree)"))
     else:
         out.append(f"closed-loop poles ({len(poles)})")
     for p in poles:

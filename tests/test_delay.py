@@ -293,3 +293,26 @@ def test_dedupe_roots_keeps_one_of_each_cluster(points, copies, jitter):
     ref = np.array(kept + [complex(np.nan, 0.0)])
     assert np.array_equal(np.isnan(got), np.isnan(ref))
     np.testing.assert_array_equal(got[~np.isnan(got)], ref[~np.isnan(ref)])
+
+
+def test_confirmed_count_needs_both_counts_to_agree():
+    # s^2 + 0.1 s + 1 + 0.5 e^{-3 s}: the crossing count of loop_roots is confirmed by the
+    # winding number (argument principle), and a count the contour does not confirm reads -1
+    import dataclasses
+    a, b, theta = np.array([[1.0, 0.1, 1.0]]), np.array([[0.0, 0.0, 0.5]]), 3.0
+    lr = delay.loop_roots(a, b, theta, np.roots([1.0, 0.1, 1.5])[None, :], count=True)
+    assert lr.counted[0] >= 0
+    wind, ok = delay.argument_count(a, b, theta, lr.sigma, delay.root_bound(a, b, theta, lr.sigma))
+    assert ok[0] and delay.confirmed_count(a, b, theta, lr)[0] == wind[0] == lr.counted[0]
+    wrong = dataclasses.replace(lr, counted=lr.counted + 2)
+    assert delay.confirmed_count(a, b, theta, wrong)[0] == -1
+
+
+def test_check_reports_a_confirmed_loop_root_count():
+    # exp(-s)/(0.1 s + 1) under the SIMC PI 0.05 (0.1 s + 1)/(0.1 s) (Skogestad, J. Process
+    # Control 13, 2003): the loop is 0.5 e^{-s}/s, a Bellman-Cooke loop with k theta = 0.5 < pi/2
+    from synth.describe import check_controller
+    from synth.lti import TransferFunction
+    plant = TransferFunction([1.0], [0.1, 1.0], delay=1.0)
+    rec = check_controller(plant, TransferFunction([0.005, 0.05], [0.1, 0.0]), {})
+    assert rec["certified"] and rec["loop_roots_counted"] == len(rec["closed_loop_poles"]) >= 1

@@ -409,6 +409,15 @@ def loop_roots(a: np.ndarray, b: np.ndarray, theta: float, starts: np.ndarray, c
     return LoopRoots(roots, decay, damping, sigma, counted, found, counted == found)
 
 
+def confirmed_count(a: np.ndarray, b: np.ndarray, theta: float, lr: LoopRoots) -> np.ndarray:
+    """The loop-root count of :func:`loop_roots` where a second, independent count agrees with
+    it, else -1: the winding number of Delta on a rectangle enclosing every root with
+    Re s > -sigma (:func:`argument_count` inside :func:`root_bound`). For the few loops a
+    user reads (check, show, export, report); too costly for every candidate of a search."""
+    wind, ok = argument_count(a, b, theta, lr.sigma, root_bound(a, b, theta, lr.sigma))
+    return np.where(ok & (lr.counted >= 0) & (wind == lr.counted), lr.counted, -1)
+
+
 # ------------------------------------------------------------------ exact certificate
 def _fr(p) -> list[Fraction]:
     return ptrim(Fraction(float(x)) for x in np.atleast_1d(p))

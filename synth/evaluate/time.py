@@ -170,10 +170,13 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
     P, G = _powers(phi.transpose(1, 2, 0), gam.T, M)
     half = M // 2
     first_blocks = FIRST_SEGMENT // M
-    for b in range(first_blocks + segs):
+    blocks = first_blocks + segs
+    doubles, grows = (flags == 1).any(axis=0), (flags > 1).any(axis=0)   # per segment
+    starts, steps = np.empty((blocks, n_c)), np.empty((blocks, n_c))      # per block: its start time and step
+    for b in range(blocks):
         seg = b - first_blocks + 1
         d = flags[:, seg - 1] if seg > 0 else None
-        if d is not None and (d == 1).any():
+        if d is not None and doubles[seg - 1]:
             # the step doubles: Phi(2h)^j = Phi(h)^(2j) and G_j(2h) = G_2j(h) for j <= M/2 are
             # already there; the second half follows from them by one product
             sel = np.flatnonzero(d == 1)
@@ -182,7 +185,7 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
             P[half:, ..., sel] = np.einsum("mijn,jkn->mikn", Pd, Pd[-1])
             G[half:, :, sel] = np.einsum("mijn,jn->min", Pd, Gd[-1]) + Gd
             h[sel] *= 2
-        if d is not None and (d > 1).any():
+        if d is not None and grows[seg - 1]:
             # the step grows by 2^d: Phi(2^d h) = Phi(h)^(2^d) and Gamma(2^d h) = G_(2^d)(h),
             # from the table (2^d <= M) or by squaring Phi^M further; then a new table
             sel = np.flatnonzero(d > 1)
@@ -199,9 +202,10 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
             h[sel] *= 2.0 ** d[sel]
         i0 = 1 + b * M
         X[i0:i0 + M] = np.einsum("mijn,jn->min", P, x) + G
-        T[i0:i0 + M] = tcur + h * np.arange(1, M + 1)[:, None]
+        starts[b], steps[b] = tcur, h
         x = X[i0 + M - 1]
         tcur = tcur + M * h
+    T[1:] = (starts[:, None, :] + steps[:, None, :] * np.arange(1, M + 1)[None, :, None]).reshape(-1, n_c)
     # outputs and their derivatives (y' = C x' + D u', x' = A x + e1) in one batched product
     # (N, 6, K) planes, so that each output's samples are contiguous in time
     planes = np.concatenate([C, C @ A], axis=1) @ X.transpose(2, 1, 0)

@@ -158,7 +158,9 @@ def _candidate_section(c: Candidate) -> str:
             f"<h3>Requirements</h3>{requirement_table_html(c)}"
             f'<h3>Certificate</h3><pre class="certificate">{_e(rec["certificate"]["text"])}</pre>'
             + (f"<h3>Loop roots ({len(poles)} roots of the quasi-polynomial with dead time, "
-               f"{rec.get('loop_roots_counted', -1)} counted in Re s > -{DOMINANCE:g} x decay rate)</h3>"
+               + (f"{rec['loop_roots_counted']} counted in Re s > -{DOMINANCE:g} x decay rate by two "
+                  "independent counts)</h3>" if rec.get("loop_roots_counted", -1) >= 0
+                  else f"not counted in Re s > -{DOMINANCE:g} x decay rate)</h3>")
                if rec["pade_order"]
                else f"<h3>Closed-loop poles ({len(poles)})</h3>")
             + "<table><tr><th>pole [1/s]</th><th>damping</th><th>|s| [rad/s]</th></tr>" + prow + "</table>"

@@ -13,9 +13,10 @@ resolves the fastest pole (RESOLUTION/|p| in scaled time), and at each segment
 boundary the step grows by the largest power of two that keeps every mode still
 alive (e^(-sigma t) above e^-ALIVE_DECAYS) at RESOLUTION or finer (at least
 2 pi/RESOLUTION samples per period); the horizon is HORIZON_DECAYS/decay rate.
-Candidates are simulated in groups of similar grid length (within 2^(1/3)). Peaks and threshold crossings are refined inside
-their sample interval on 16 extra exact samples (one more matrix exponential),
-then by cubic Hermite interpolation from exact values and exact derivatives.
+Candidates are simulated in groups of similar grid length (within 2^(1/3)).
+Peaks and threshold crossings are refined inside their sample interval on 16
+extra exact samples (one more matrix exponential), then by cubic Hermite
+interpolation from exact values and exact derivatives.
 """
 
 from __future__ import annotations
@@ -155,7 +156,7 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
         poles = batch_roots(char)
     if grid_plan is None:
         grid_plan = plan(poles / w0[:, None], HORIZON_DECAYS / (decay / w0))
-    h0, flags, nseg = grid_plan
+    h0, growth, nseg = grid_plan
     segs = int(nseg.max()) if nseg.size else 0
     phi, gam = _zoh(A, h0)
 
@@ -171,11 +172,11 @@ def simulate(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarray, decay: np
     half = M // 2
     first_blocks = FIRST_SEGMENT // M
     blocks = first_blocks + segs
-    doubles, grows = (flags == 1).any(axis=0), (flags > 1).any(axis=0)   # per segment
+    doubles, grows = (growth == 1).any(axis=0), (growth > 1).any(axis=0)   # per segment
     starts, steps = np.empty((blocks, n_c)), np.empty((blocks, n_c))      # per block: its start time and step
     for b in range(blocks):
         seg = b - first_blocks + 1
-        d = flags[:, seg - 1] if seg > 0 else None
+        d = growth[:, seg - 1] if seg > 0 else None
         if d is not None and doubles[seg - 1]:
             # the step doubles: Phi(2h)^j = Phi(h)^(2j) and G_j(2h) = G_2j(h) for j <= M/2 are
             # already there; the second half follows from them by one product
@@ -545,7 +546,7 @@ def grouped_time_metrics(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarra
     """time_metrics for a batch, simulated in groups of similar grid length (bounded memory)."""
     n = char.shape[0]
     t_end = HORIZON_DECAYS / (decay / w0)
-    h0, flags, nseg = plan(poles / w0[:, None], t_end)
+    h0, growth, nseg = plan(poles / w0[:, None], t_end)
     length = FIRST_SEGMENT + SEGMENT_SAMPLES * nseg
     degree = char.shape[1] - 1 - np.argmax(char != 0, axis=1)   # rows of a batch may differ in order
     bucket = np.ceil(GROUPS_PER_OCTAVE * np.log2(length)).astype(int) * (char.shape[1] + 1) + degree
@@ -557,7 +558,7 @@ def grouped_time_metrics(char: np.ndarray, nums: list[np.ndarray], w0: np.ndarra
             sl = idx[s:s + per]
             nsl = nseg[sl]
             r = simulate(char[sl], [x[sl] for x in nums], w0[sl], decay[sl], poles[sl],
-                         (h0[sl], flags[sl, :int(nsl.max())], nsl))
+                         (h0[sl], growth[sl, :int(nsl.max())], nsl))
             for key, v in time_metrics(r, band).items():
                 out.setdefault(key, np.full(n, np.nan))[sl] = v
     return out

@@ -24,10 +24,8 @@ Nothing here asserts on timing; the machine is shared and noisy.
 from __future__ import annotations
 
 import argparse
-import datetime
 import json
 import os
-import platform
 import subprocess
 import sys
 import tempfile
@@ -36,7 +34,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _machine import cpu_model  # noqa: E402
+from _machine import results_footer, write_results  # noqa: E402
 
 BIG_BUDGET = 10_000_000            # never binds within the limit
 FIRST_FEASIBLE_SPECS = ("heated_tank", "drying_oven")
@@ -111,7 +109,6 @@ def main() -> None:
             rows.append(f"| {name} | {r['evaluated']:,} | {r['search']:.3f} | {r['ranking']:.3f} | {r['run']:.3f} "
                         f"| {over:+.3f} | {'met' if ok else 'MISSED'} | {r['command']:.2f} | {first} |")
             print(rows[-1], flush=True)
-    load = os.getloadavg()
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT, capture_output=True, text=True).stdout.strip()
     lines = [f"# Time limit and first feasible design{' (quick)' if a.quick else ''}", "",
              f"`synth design SPEC --time-limit {limit:g} --budget {BIG_BUDGET} --quiet`, one fresh process per spec, "
@@ -126,16 +123,9 @@ def main() -> None:
              f"{len(rows) - len(misses)} of {len(rows)}" + (f" (missed: {', '.join(misses)})" if misses else ""),
              f"- first feasible design within {FIRST_FEASIBLE_TARGET_S:g} s on {' and '.join(FIRST_FEASIBLE_SPECS)}: "
              + ("met" if not first_misses else f"MISSED ({', '.join(first_misses)})"),
-             "",
-             f"Machine: {cpu_model()}, {os.cpu_count()} cores (load {load[0]:.2f} {load[1]:.2f} {load[2]:.2f} at the end); "
-             f"Python {platform.python_version()}; {datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.",
-             f"Command: `python benchmarks/time_limit.py{' --quick' if a.quick else ''}"
-             f"{f' --limit {a.limit:g}' if a.limit else ''}`", ""]
-    text = "\n".join(lines)
-    print(text)
-    out = ROOT / "benchmarks" / "results" / f"time_limit{'-quick' if a.quick else ''}.md"
-    out.write_text(text)
-    print(f"wrote {out}")
+             *results_footer(f"python benchmarks/time_limit.py{' --quick' if a.quick else ''}"
+                             f"{f' --limit {a.limit:g}' if a.limit else ''}")]
+    write_results(ROOT / "benchmarks" / "results" / f"time_limit{'-quick' if a.quick else ''}.md", lines)
 
 
 if __name__ == "__main__":

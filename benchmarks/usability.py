@@ -18,9 +18,7 @@ which uses a 6,000-candidate run). Nothing here asserts on timing.
 from __future__ import annotations
 
 import argparse
-import datetime
 import os
-import platform
 import resource
 import sqlite3
 import statistics
@@ -32,7 +30,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _machine import cpu_model  # noqa: E402
+from _machine import results_footer, write_results  # noqa: E402
 
 BARE_APP = '''
 import typer
@@ -164,16 +162,8 @@ def main() -> None:
              "| command | wall time | CPU time | comparison | target | verdict |",
              "| --- | --- | --- | --- | --- | --- |"]
     lines += [f"| {' | '.join(r)} |" for r in rows]
-    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
-    lines += ["", f"Machine: {cpu_model()}, {os.cpu_count()} cores shared with other work "
-              f"(load average {load:.1f} at the end); "
-              f"Python {platform.python_version()}; {datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.",
-              f"Command: `python benchmarks/usability.py{' --quick' if a.quick else ''}`", ""]
-    text = "\n".join(lines)
-    print(text)
-    out = ROOT / "benchmarks" / "results" / f"usability{'-quick' if a.quick else ''}.md"
-    out.write_text(text)
-    print(f"wrote {out}")
+    lines += results_footer(f"python benchmarks/usability.py{' --quick' if a.quick else ''}")
+    write_results(ROOT / "benchmarks" / "results" / f"usability{'-quick' if a.quick else ''}.md", lines)
 
 
 if __name__ == "__main__":

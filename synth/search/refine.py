@@ -76,6 +76,7 @@ SEGMENT = (0.5, 0.8, 0.95, 0.99)       # points on the feasible-to-iterate segme
 MARGIN = (1e-6, 1e-4, 3e-3)            # normalised slack aimed at by the boundary projections
 PATTERN = (1.0, 2.0)                   # multiples of the last successful move tried next
 MODEL = (1.0, 3.0, 9.0)                # lengths (in compass steps) of the gradient-projection steps
+BARRIER = 0.1                          # normalised shortfall a poll may reach beyond its iterate's
 BASE_LATTICE = {1: 1, 2: 7, 3: 4}
 MAX_LATTICE = {1: 1, 2: 15, 3: 8}
 
@@ -315,6 +316,23 @@ def _starts(search, df, W, scal, c_all):
     return U[idx], idx
 
 
+def worst_shortfall(c: np.ndarray) -> np.ndarray:
+    """Largest normalised shortfall of each row (0 where every requirement is met; a NaN
+    or an infinite entry counts as infinite)."""
+    c = np.where(np.isfinite(c), c, np.inf)
+    return np.maximum(c, 0.0).max(axis=1) if c.shape[1] else np.zeros(len(c))
+
+
+def barrier_rejects(c_new: np.ndarray, c_iter: np.ndarray) -> np.ndarray:
+    """True for poll points a local search must not move to: worst shortfall above
+    max(BARRIER, that of the search's own iterate). A progressive barrier (Audet & Dennis,
+    SIAM J. Optim. 20, 2009): the penalty alone let a search whose scalarised objective
+    outweighs it walk far outside a limit and stay there (a one-objective front has the
+    floor span, so its objective is steep), while moves that keep or shrink the
+    shortfall, and small excursions across an active limit, stay allowed."""
+    return worst_shortfall(c_new) > np.maximum(BARRIER, worst_shortfall(c_iter))
+
+
 def front_refine(search, round_: int | None = None, max_polls: int | None = None) -> None:
     """Refine the front of ``search`` in place until converged, out of budget or out of time
     (or after ``max_polls`` batches: the short feasibility restoration during screening)."""
@@ -398,6 +416,7 @@ def front_refine(search, round_: int | None = None, max_polls: int | None = None
                 Wo = W[active[owner]]
                 ge = chebyshev(scal(search, out), Wo) if scal.any_feasible else np.zeros(len(out))
                 pe = al_merit(ge, ce, lam[active[owner]], mu[active[owner]])
+                pe = np.where(barrier_rejects(ce, c[active][owner]), np.inf, pe)
                 fe = out["feasible"].to_numpy(bool)
                 # best merit per owner, and best feasible scalarisation per owner (vectorised)
                 for arr, target in ((pe, "phi"), (np.where(fe, ge, np.inf), "gf")):

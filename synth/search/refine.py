@@ -41,7 +41,10 @@ sits into feasible designs on the limit (aimed from 1e-6 to 3e-3 inside it, so a
 design can sit as close to the limit as a rule tuned exactly to it). Each poll also
 tries Rosen's gradient-projection step (J. SIAM 8, 1960) on plane models fitted to
 the previous poll, which walks along a curved active limit in the descent direction
-where compass moves leave it. Without any feasible design yet,
+where compass moves leave it. A progressive barrier (Audet & Dennis, SIAM J. Optim.
+20, 2009) keeps each search near the feasible set: a poll point whose worst shortfall
+exceeds max(0.1, that of the search's iterate) is not moved to, whatever its merit.
+Without any feasible design yet,
 g_w = 0 and the same searches minimise the violation.
 
 A local search needs some MIN_POLLS polls to converge, so a budget too small

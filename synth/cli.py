@@ -364,8 +364,32 @@ def report(run_dir: Path = typer.Argument(..., metavar="RUN", help="run folder")
 
 
 # ------------------------------------------------------------------ entry point
+REDELIVER_S = 2.0       # a Ctrl-C still unanswered after this long is delivered again
+_pending = False
+
+
 def _on_sigint(signum, frame):
+    """Raise :class:`Interrupted` in the main thread. An exception raised by a signal handler
+    is lost when it lands in a finaliser or a callback that swallows errors; so until
+    :func:`main` has taken it, a daemon thread delivers the Ctrl-C again every REDELIVER_S."""
+    global _pending
+    if not _pending:
+        _pending = True
+        import threading
+        threading.Thread(target=_redeliver, daemon=True, name="synth-sigint").start()
     raise Interrupted()
+
+
+def _redeliver() -> None:
+    import threading
+    import time
+    main_id = threading.main_thread().ident
+    while True:
+        time.sleep(REDELIVER_S)
+        if not _pending:
+            return
+        # a real signal to the main thread, so that a blocking call there wakes up too
+        signal.pthread_kill(main_id, signal.SIGINT)
 
 
 def _interrupted_message() -> str:
@@ -379,11 +403,13 @@ def _interrupted_message() -> str:
 
 def main() -> None:
     """Console-script entry point: Ctrl-C anywhere gives one line and exit status 130."""
+    global _pending
     signal.signal(signal.SIGINT, _on_sigint)
     try:
         app()
     except (Interrupted, KeyboardInterrupt):
         signal.signal(signal.SIGINT, signal.SIG_IGN)     # a second Ctrl-C must not interrupt the message
+        _pending = False
         try:
             sys.stdout.flush()
         except Exception:
@@ -391,6 +417,9 @@ def main() -> None:
         sys.stderr.write("\n" + _interrupted_message() + "\n")
         sys.stderr.flush()
         sys.exit(130)
+    finally:                       # no Ctrl-C delivered again while the interpreter shuts down
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+        _pending = False
 
 
 if __name__ == "__main__":

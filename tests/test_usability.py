@@ -430,3 +430,28 @@ def test_json_roots_writes_what_json_dumps_writes(n, k, data):
                  dtype=complex).reshape(n, k)
     want = [json.dumps(r) for r in _roots(z)]
     assert _json_roots(z) == want and _json_roots(list(z)) == want
+
+
+def test_ctrl_c_swallowed_by_a_library_is_delivered_again(tmp_path):
+    # An exception raised by a signal handler is lost when it lands in a finaliser or in a
+    # library's catch-all; the Ctrl-C must still end the command (status 130, one line).
+    script = tmp_path / "swallow.py"
+    script.write_text(
+        "import os, signal, sys, time\n"
+        "from synth import cli\n"
+        "@cli.app.command('swallow')\n"
+        "def swallow():\n"
+        "    try:\n"
+        "        os.kill(os.getpid(), signal.SIGINT)\n"
+        "        time.sleep(5)\n"
+        "    except BaseException:\n"
+        "        pass                     # the first delivery is lost here\n"
+        "    time.sleep(60)\n"
+        "    print('finished')\n"
+        "sys.argv = ['synth', 'swallow']\n"
+        "cli.main()\n")
+    p = subprocess.run([sys.executable, str(script)], env=env(), cwd=ROOT, capture_output=True, text=True,
+                       timeout=50)
+    assert p.returncode == 130, p.stderr
+    assert "finished" not in p.stdout and "Traceback" not in p.stderr
+    assert [ln for ln in p.stderr.splitlines() if ln.strip()] == ["interrupted"]
